@@ -1,0 +1,1 @@
+"""One module per ``fanmap`` sub-command; see :mod:`fanmap.cli`."""
