@@ -3,6 +3,8 @@
 Every analysis returns one of these; the command line, the report and the
 batch table only ever read them.  Values are SI; ``to_dict`` gives the JSON
 contract documented in the README (NaN and infinities become ``null``).
+Fields declared with ``metadata={"json": False}`` hold bulky working data
+(ridge points for figures) and are left out of the JSON.
 """
 
 import dataclasses
@@ -18,7 +20,8 @@ __all__ = ["State", "FanResult", "GateResult", "to_jsonable", "dumps"]
 def to_jsonable(value):
     """Recursively turn dataclasses, NumPy scalars/arrays and non-finite floats into JSON types."""
     if dataclasses.is_dataclass(value) and not isinstance(value, type):
-        return {f.name: to_jsonable(getattr(value, f.name)) for f in dataclasses.fields(value)}
+        return {f.name: to_jsonable(getattr(value, f.name)) for f in dataclasses.fields(value)
+                if f.metadata.get("json", True)}
     if isinstance(value, dict):
         return {str(k): to_jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
@@ -88,6 +91,8 @@ class FanResult:
     crosschecks: dict | None = None
     source: str | None = None
     version: str = ""
+    # {"field": T array, "gate": V array, "state": index into states (-1: unassigned), "weight": array}
+    ridge_points: dict | None = field(default=None, repr=False, metadata={"json": False})
 
     def to_dict(self):
         return to_jsonable(self)
