@@ -1,0 +1,832 @@
+"""Figures of a fit: the fan with its labelled lines, redrawn maps, residuals, gate maps.
+
+Every function takes labelled data (the map contract of :mod:`fanmap._schema`)
+and a result dataclass, and returns a :class:`matplotlib.figure.Figure` drawn
+with the Agg canvas, without touching pyplot's global state.  Axes are in the
+user's units (V, T; densities in 10^12 cm^-2, the trade's usual unit);
+quantities inside stay SI.  The visual scheme lives in :mod:`fanmap._style`.
+
+A fitted state is the line V_g = intercept + slope |B| (minima of R_xx do not
+depend on the sign of the field).
+
+Examples
+--------
+>>> import numpy as np, xarray as xr
+>>> from fanmap.results import FanResult, State
+>>> gate = np.linspace(-5, 5, 41); field = np.linspace(0.5, 4, 15)
+>>> rxx = xr.DataArray(np.ones((15, 41)), dims=("field", "gate"),
+...                    coords={"field": field, "gate": gate}, attrs={"units": "ohm"})
+>>> result = FanResult(1e15, 1e13, 1.6e-4, 0.0, 0.01, 0.0, 4, 1, "material sequence",
+...                    states=[State("2", "integer", 0.48, 0.0, 15, 0.5, 4.0, 2.0)])
+>>> fig = plot_fan(xr.Dataset({"rxx": rxx}), result)
+>>> len(fig.axes)  # the map and its colour bar
+2
+"""
+
+import math
+from fractions import Fraction
+
+import numpy as np
+from matplotlib.colors import LogNorm, Normalize
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib import rc_context
+from matplotlib.transforms import blended_transform_factory
+
+from . import _schema as S
+from . import _style
+from .errors import InputError
+from .physics import VACUUM_PERMITTIVITY, filling_from_density
+
+__all__ = [
+    "state_label", "colour_scale", "plot_fan", "plot_filling_map", "plot_density_map",
+    "plot_residuals", "plot_index_plot", "index_plot_data", "plot_gate_maps", "plot_nd_map",
+    "plot_batch_summary", "state_residuals", "DENSITY_UNIT",
+]
+
+#: Densities on figure axes are in units of 10^12 cm^-2 = 10^16 m^-2.
+DENSITY_UNIT = 1e16
+_DENSITY_LABEL = r"density $n$ ($10^{12}$ cm$^{-2}$)"
+_UNIT_TEXT = {"ohm": "Ω", "Ohm": "Ω", "ohms": "Ω", "V": "V", "T": "T"}
+
+
+# --- small helpers -------------------------------------------------------------
+
+def _new_figure(width, height):
+    fig = Figure(figsize=(width, height), layout="constrained")
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _text_minus(text):
+    return text.replace("-", "\u2212")
+
+
+def state_label(state):
+    """Text that labels a state on a figure: its filling, p/q, or (t, s) for a satellite.
+
+    Examples
+    --------
+    >>> from fanmap.results import State
+    >>> state_label(State("-6", "integer", 0.0, 0.0, 1, 1.0, 2.0))
+    '−6'
+    >>> state_label(State("2/3", "fractional", 0.0, 0.0, 1, 1.0, 2.0))
+    '2/3'
+    >>> state_label(State("1", "satellite", 0.0, 0.0, 1, 1.0, 2.0, band_filling=-4))
+    '(1, −4)'
+    """
+    if state.kind == "satellite":
+        band = "?" if state.band_filling is None else str(int(state.band_filling))
+        return _text_minus(f"({state.filling}, {band})")
+    return _text_minus(str(state.filling))
+
+
+def _state_nominal_filling(state):
+    """Filling factor of a state as a number (from its text; NaN if unreadable)."""
+    try:
+        return float(Fraction(str(state.filling).strip()))
+    except (ValueError, ZeroDivisionError):
+        return float(state.filling_value)
+
+
+def _units_text(attrs):
+    units = str(attrs.get("units", "")).strip()
+    return _UNIT_TEXT.get(units, units)
+
+
+def _axis_label(coord, default_name):
+    name = coord.attrs.get("long_name", default_name)
+    units = _units_text(coord.attrs)
+    return f"{name} ({units})" if units else name
+
+
+def _signal(fan_map, signal=None):
+    """The data variable to draw (R_xx by default) as a DataArray on (field, gate)."""
+    name = signal or (S.RXX if S.RXX in fan_map.data_vars else None)
+    if name is None or name not in fan_map.data_vars:
+        raise InputError(
+            f"the map has no {signal or S.RXX!r} variable to draw (it has: "
+            f"{', '.join(map(str, fan_map.data_vars)) or 'none'}); pass signal=NAME")
+    da = fan_map[name]
+    if set(da.dims) != {S.FIELD, S.GATE}:
+        raise InputError(f"{name!r} has dimensions {da.dims}; a fan map needs "
+                         f"({S.FIELD!r}, {S.GATE!r})")
+    da = da.transpose(S.FIELD, S.GATE)
+    return da.sortby(S.FIELD).sortby(S.GATE)
+
+
+def colour_scale(values, scale="auto"):
+    """Choose how to colour a resistance map: ``(array, norm, description)``.
+
+    ``scale`` is ``"linear"``, ``"log"``, ``"row"`` (each row divided by its
+    median, then logarithmic: for maps whose background changes by decades
+    with field) or ``"auto"``, which picks ``"row"`` when the row medians span
+    more than a factor 10, ``"log"`` when the positive values span more than a
+    factor 30, and ``"linear"`` otherwise.  Limits are robust percentiles, so
+    a huge neutrality peak does not wash out the fan.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rows = np.outer(np.logspace(0, 3, 5), np.linspace(1, 2, 8))
+    >>> colour_scale(rows)[2]
+    'row'
+    >>> colour_scale(np.linspace(1, 2, 40).reshape(5, 8))[2]
+    'linear'
+    """
+    values = np.asarray(values, dtype=float)
+    finite = values[np.isfinite(values)]
+    if finite.size == 0:
+        raise InputError("the map has no finite values to draw; check the signal and its NaNs")
+    positive = finite[finite > 0]
+    mostly_positive = positive.size >= 0.98 * finite.size
+    if scale == "auto":
+        scale = "linear"
+        if mostly_positive and positive.size:
+            with np.errstate(all="ignore"):
+                medians = np.nanmedian(np.where(values > 0, values, np.nan), axis=1)
+            medians = medians[np.isfinite(medians) & (medians > 0)]
+            lo, hi = np.percentile(positive, [1, 99])
+            if medians.size > 1 and medians.max() / medians.min() > 10:
+                scale = "row"
+            elif lo > 0 and hi / lo > 30:
+                scale = "log"
+    if scale not in ("linear", "log", "row"):
+        raise InputError(f"unknown colour scale {scale!r}; use auto, linear, log or row")
+    if scale == "row":
+        with np.errstate(all="ignore"):
+            medians = np.nanmedian(np.where(values > 0, values, np.nan), axis=1, keepdims=True)
+            values = values / medians
+        finite = values[np.isfinite(values) & (values > 0)]
+        scale_used = "row"
+    else:
+        scale_used = scale
+    if scale_used in ("log", "row"):
+        positive = finite[finite > 0]
+        if positive.size == 0:
+            raise InputError("a logarithmic colour scale needs positive values; use scale='linear'")
+        lo, hi = np.percentile(positive, [0.5, 99.5])
+        lo = max(lo, hi * 1e-6)
+        values = np.where(values > 0, values, np.nan)
+        return values, LogNorm(vmin=lo, vmax=max(hi, lo * 1.01)), scale_used
+    lo, hi = np.percentile(finite, [0.5, 99.5])
+    return values, Normalize(vmin=lo, vmax=hi if hi > lo else lo + 1), "linear"
+
+
+def _colour_bar_label(da, scale):
+    symbol = {S.RXX: r"$R_{xx}$", S.RXY: r"$R_{xy}$"}.get(da.name, str(da.name))
+    name = da.attrs.get("long_name", "")
+    if scale == "row":
+        return f"{symbol} / row median" + (f"  ({name})" if name else "")
+    units = _units_text(da.attrs)
+    text = f"{name} {symbol}" if name else symbol
+    return f"{text} ({units})" if units else text
+
+
+def _state_gate(state, field):
+    return state.intercept + state.slope * np.abs(field)
+
+
+def _draw_state_line(ax, x_fit, y_fit, x_ext, y_ext, style):
+    kw = {"color": style["color"], "linestyle": style["linestyle"], "solid_capstyle": "round"}
+    ax.plot(x_ext, y_ext, linewidth=0.7, alpha=0.55, path_effects=_style.halo(1.8), **kw)
+    ax.plot(x_fit, y_fit, linewidth=style["linewidth"], path_effects=_style.halo(), **kw)
+
+
+def _place_top_labels(fig, ax, positions, texts, kinds):
+    """Labels above the top edge at data x ``positions``, stacked in tiers where they would collide."""
+    transform = blended_transform_factory(ax.transData, ax.transAxes)
+    order = np.argsort(positions)
+    fig.canvas.draw()
+    renderer = fig.canvas.get_renderer()
+    tiers_right = []         # right edge (display x) of the last label in each tier
+    placed = []
+    for i in order:
+        style = _style.kind_style(kinds[i])
+        text = ax.text(positions[i], 1.012, texts[i], transform=transform, ha="center",
+                       va="bottom", fontsize=_style.FONT_SIZE - 1, clip_on=False,
+                       color="#111111", fontweight="bold" if kinds[i] == "integer" else "normal",
+                       fontstyle="italic" if kinds[i] == "fractional" else "normal")
+        text._fanmap_kind = style["label"]
+        box = text.get_window_extent(renderer)
+        pad = 2.0
+        for tier, right in enumerate(tiers_right):
+            if box.x0 > right + pad:
+                tiers_right[tier] = box.x1
+                break
+        else:
+            tier = len(tiers_right)
+            tiers_right.append(box.x1)
+        if tier:
+            height = box.height / ax.get_window_extent(renderer).height
+            text.set_y(1.012 + tier * 1.05 * height)
+            ax.plot([positions[i], positions[i]], [1.0, 1.012 + tier * 1.05 * height],
+                    transform=transform, color="#777777", linewidth=0.5, clip_on=False)
+        placed.append(text)
+    return placed
+
+
+def _place_side_labels(ax, points, texts, kinds):
+    """Labels inside the axes where a line leaves through the left or right edge."""
+    for (x, y, side), text, kind in zip(points, texts, kinds):
+        style = _style.kind_style(kind)
+        ax.annotate(text, (x, y), xytext=(-3 if side == "right" else 3, 0),
+                    textcoords="offset points", ha="right" if side == "right" else "left",
+                    va="center", fontsize=_style.FONT_SIZE - 1, color=style["color"],
+                    path_effects=_style.halo(2.2), clip_on=True)
+
+
+def _label_lines(fig, ax, curves, texts, kinds):
+    """Label each curve (x, y arrays, y increasing) where it leaves the axes."""
+    x0, x1 = sorted(ax.get_xlim())
+    y1 = ax.get_ylim()[1]
+    top, side = ([], [], []), ([], [], [])
+    for (x, y), text, kind in zip(curves, texts, kinds):
+        inside = (x >= x0) & (x <= x1) & (y <= y1)
+        if not inside.any():
+            continue
+        last = np.flatnonzero(inside)[-1]
+        if last == len(x) - 1 or y[last] >= y1 - 1e-9 * abs(y1):
+            top[0].append(x[last])
+            top[1].append(text)
+            top[2].append(kind)
+        else:
+            edge = "right" if x[min(last + 1, len(x) - 1)] > x1 else "left"
+            side[0].append((x1 if edge == "right" else x0, y[last], edge))
+            side[1].append(text)
+            side[2].append(kind)
+    if top[0]:
+        _place_top_labels(fig, ax, np.asarray(top[0]), top[1], top[2])
+    if side[0]:
+        _place_side_labels(ax, side[0], side[1], side[2])
+
+
+def _kind_legend(ax, kinds, extra=(), loc="lower right"):
+    handles = []
+    for kind in dict.fromkeys(kinds):
+        style = _style.kind_style(kind)
+        handles.append(Line2D([], [], color=style["color"], linestyle=style["linestyle"],
+                              linewidth=style["linewidth"], path_effects=_style.halo(),
+                              label=style["label"]))
+    handles.extend(extra)
+    if handles:
+        legend = ax.legend(handles=handles, loc=loc, frameon=True, framealpha=0.85,
+                           facecolor="#3a3a3a", edgecolor="none", labelcolor="#ffffff")
+        legend.set_zorder(5)
+
+
+def _field_samples(field_lo, field_hi, count=200):
+    return np.linspace(field_lo, field_hi, count)
+
+
+# --- fan map and its redrawn versions ------------------------------------------
+
+def plot_fan(fan_map, result, *, signal=None, scale="auto", show_ridges=False):
+    """The fan map with every fitted line overlaid and labelled with its filling factor.
+
+    Lines are solid over the field range where the state was fitted and thin
+    where extrapolated to B = 0; each is labelled where it leaves the map
+    (fractions as p/q, satellites as (t, s)).  The star marks the fitted
+    zero-density point (V0, B = 0) with its standard error.
+
+    Parameters
+    ----------
+    fan_map : xarray.Dataset
+        Fan map (dims ``field``, ``gate``).
+    result : FanResult
+        The fit to draw.
+    signal : str, optional
+        Variable to draw (default ``rxx``).
+    scale : {"auto", "linear", "log", "row"}
+        Colour scale, see :func:`colour_scale`.
+    show_ridges : bool
+        Also draw the ridge points the fit used.
+    """
+    da = _signal(fan_map, signal)
+    gate, field = da[S.GATE].values, da[S.FIELD].values
+    values, norm, used = colour_scale(da.values, scale)
+    with rc_context(_style.rc_params()):
+        fig = _new_figure(7.0, 5.4)
+        ax = fig.add_subplot()
+        mesh = ax.pcolormesh(gate, field, values, norm=norm, cmap=_style.MAP_COLORMAP,
+                             shading="nearest", rasterized=True)
+        bar = fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.05)
+        bar.set_label(_colour_bar_label(da, used))
+        ax.set_xlabel(_axis_label(da[S.GATE], "gate voltage"))
+        ax.set_ylabel(_axis_label(da[S.FIELD], "magnetic field"))
+        gate_lo, gate_hi = float(gate.min()), float(gate.max())
+        field_lo, field_hi = min(0.0, float(field.min())), float(field.max())
+        ax.set_xlim(gate_lo, gate_hi)
+        ax.set_ylim(field_lo, field_hi)
+        ax.set_facecolor("#e9e9e9")
+        if show_ridges and result.ridge_points is not None:
+            rp = result.ridge_points
+            ax.plot(rp["gate"], rp["field"], **_style.RIDGE_POINT_STYLE)
+        curves, texts, kinds = [], [], []
+        for state in result.states:
+            style = _style.kind_style(state.kind)
+            b_ext = _field_samples(max(field_lo, 0.0), field_hi)
+            b_fit = _field_samples(state.field_min, state.field_max, 50)
+            _draw_state_line(ax, _state_gate(state, b_fit), b_fit, _state_gate(state, b_ext),
+                             b_ext, style)
+            curves.append((_state_gate(state, b_ext), b_ext))
+            texts.append(state_label(state))
+            kinds.append(state.kind)
+        _mark_zero_density(ax, result, gate_lo, gate_hi, field_lo)
+        _label_lines(fig, ax, curves, texts, kinds)
+        zero = Line2D([], [], label=r"zero density $V_0$", **_style.ZERO_DENSITY_MARKER)
+        _kind_legend(ax, kinds, extra=[zero])
+        fig.suptitle(_fan_title(fan_map, result), fontsize=_style.FONT_SIZE + 1)
+    return fig
+
+
+def _fan_title(fan_map, result):
+    alpha = result.density_per_volt
+    parts = []
+    source = result.source or fan_map.attrs.get("source")
+    if source:
+        parts.append(str(source).rsplit("/", 1)[-1])
+    if math.isfinite(alpha):
+        err = result.density_per_volt_stderr
+        err_text = f" ± {err / 1e14:.2g}" if math.isfinite(err) else ""
+        parts.append(f"α = {alpha / 1e14:.4g}{err_text} ×10¹⁰ cm⁻² V⁻¹")
+    v0 = result.zero_density_voltage
+    if math.isfinite(v0):
+        err = result.zero_density_voltage_stderr
+        parts.append(_text_minus(f"V0 = {v0:.4g}" + (f" ± {err:.2g}" if math.isfinite(err) else "")
+                                 + " V"))
+    return "   ".join(parts)
+
+
+def _mark_zero_density(ax, result, gate_lo, gate_hi, field_lo):
+    v0, err = result.zero_density_voltage, result.zero_density_voltage_stderr
+    if not math.isfinite(v0):
+        return
+    if gate_lo <= v0 <= gate_hi:
+        ax.errorbar([v0], [max(field_lo, 0.0)], xerr=[err] if math.isfinite(err) else None,
+                    ecolor="#ffffff", elinewidth=1.5, capsize=3, zorder=6, clip_on=False,
+                    **_style.ZERO_DENSITY_MARKER)
+    else:
+        edge = gate_hi if v0 > gate_hi else gate_lo
+        ax.annotate(_text_minus(f"V0 = {v0:.3g} V →" if v0 > gate_hi else f"← V0 = {v0:.3g} V"),
+                    (edge, max(field_lo, 0.0)), xytext=(-4 if v0 > gate_hi else 4, 6),
+                    textcoords="offset points", ha="right" if v0 > gate_hi else "left",
+                    va="bottom", color="#ffffff", path_effects=_style.halo(2.2), zorder=6)
+
+
+def _density(gate, result):
+    return result.density_per_volt * (np.asarray(gate) - result.zero_density_voltage)
+
+
+def _require_calibration(result, what):
+    if not (math.isfinite(result.density_per_volt) and result.density_per_volt > 0
+            and math.isfinite(result.zero_density_voltage)):
+        raise InputError(f"the {what} needs a fitted lever arm and zero-density voltage; "
+                         "this result has none")
+
+
+def plot_filling_map(fan_map, result, *, signal=None, scale="auto", max_filling=None):
+    """The map redrawn against filling factor ν = n h/(e B) and field: fan lines become vertical.
+
+    Satellite lines, which do not pass through the fan's origin, stay curves.
+    ``max_filling`` limits the ν axis (default: the fitted states plus a margin).
+    """
+    _require_calibration(result, "filling-factor map")
+    da = _signal(fan_map, signal)
+    gate, field = da[S.GATE].values, da[S.FIELD].values
+    keep = np.abs(field) > 1e-6 * max(np.abs(field).max(), 1e-30)
+    if keep.sum() < 2:
+        raise InputError("the filling-factor map needs at least two rows at non-zero field")
+    values, norm, used = colour_scale(da.values[keep], scale)
+    field_kept = field[keep]
+    nu = filling_from_density(_density(gate, result)[None, :], field_kept[:, None])
+    fillings = np.array([_state_nominal_filling(s) for s in result.states if s.kind != "satellite"])
+    fillings = fillings[np.isfinite(fillings)]
+    if max_filling is None:
+        span = np.abs(fillings).max() if fillings.size else 12.0
+        max_filling = span + max(2.0, 0.12 * span)
+    nu_lo = max(-max_filling, float(np.nanmin(nu)))
+    nu_hi = min(max_filling, float(np.nanmax(nu)))
+    with rc_context(_style.rc_params()):
+        fig = _new_figure(7.0, 5.0)
+        ax = fig.add_subplot()
+        # Gouraud shading interpolates inside the sheared cells, which at low field are
+        # much wider than a pixel; flat cells would draw a saw-tooth pattern there.
+        finite = np.isfinite(values)
+        mesh = ax.pcolormesh(nu, np.broadcast_to(field_kept[:, None], nu.shape),
+                             np.ma.masked_invalid(np.where(finite, values, np.nan)),
+                             norm=norm, cmap=_style.TRANSFORMED_COLORMAP, shading="gouraud",
+                             rasterized=True)
+        bar = fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.05)
+        bar.set_label(_colour_bar_label(da, used))
+        ax.set_xlim(nu_lo, nu_hi)
+        positive = field_kept[field_kept > 0]
+        ax.set_ylim(float(positive.min()) if positive.size else float(field_kept.min()),
+                    float(field_kept.max()))
+        ax.set_xlabel(r"filling factor $\nu = n h / (e B)$")
+        ax.set_ylabel(_axis_label(da[S.FIELD], "magnetic field"))
+        ax.set_facecolor("#e9e9e9")
+        curves, texts, kinds = [], [], []
+        b_top = float(field_kept.max())
+        for state in result.states:
+            style = _style.kind_style(state.kind)
+            b_fit = _field_samples(max(state.field_min, 1e-3), state.field_max, 50)
+            b_ext = _field_samples(max(float(positive.min()) if positive.size else 1e-3, 1e-3),
+                                   b_top)
+            nu_fit = filling_from_density(_density(_state_gate(state, b_fit), result), b_fit)
+            nu_ext = filling_from_density(_density(_state_gate(state, b_ext), result), b_ext)
+            _draw_state_line(ax, nu_fit, b_fit, nu_ext, b_ext, style)
+            curves.append((nu_ext, b_ext))
+            texts.append(state_label(state))
+            kinds.append(state.kind)
+        _label_lines(fig, ax, curves, texts, kinds)
+        _kind_legend(ax, kinds)
+        fig.suptitle("map against filling factor (fitted calibration)",
+                     fontsize=_style.FONT_SIZE + 1)
+    return fig
+
+
+def plot_density_map(fan_map, result, *, signal=None, scale="auto"):
+    """The map redrawn against carrier density n = α (V_g − V0) and field."""
+    _require_calibration(result, "density map")
+    da = _signal(fan_map, signal)
+    gate, field = da[S.GATE].values, da[S.FIELD].values
+    values, norm, used = colour_scale(da.values, scale)
+    density = _density(gate, result) / DENSITY_UNIT
+    with rc_context(_style.rc_params()):
+        fig = _new_figure(7.0, 5.0)
+        ax = fig.add_subplot()
+        mesh = ax.pcolormesh(density, field, values, norm=norm,
+                             cmap=_style.TRANSFORMED_COLORMAP, shading="nearest",
+                             rasterized=True)
+        bar = fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.05)
+        bar.set_label(_colour_bar_label(da, used))
+        field_lo, field_hi = min(0.0, float(field.min())), float(field.max())
+        ax.set_xlim(float(density.min()), float(density.max()))
+        ax.set_ylim(field_lo, field_hi)
+        ax.set_xlabel(_DENSITY_LABEL)
+        ax.set_ylabel(_axis_label(da[S.FIELD], "magnetic field"))
+        ax.set_facecolor("#e9e9e9")
+        curves, texts, kinds = [], [], []
+        for state in result.states:
+            style = _style.kind_style(state.kind)
+            b_fit = _field_samples(state.field_min, state.field_max, 50)
+            b_ext = _field_samples(max(field_lo, 0.0), field_hi)
+            n_fit = _density(_state_gate(state, b_fit), result) / DENSITY_UNIT
+            n_ext = _density(_state_gate(state, b_ext), result) / DENSITY_UNIT
+            _draw_state_line(ax, n_fit, b_fit, n_ext, b_ext, style)
+            curves.append((n_ext, b_ext))
+            texts.append(state_label(state))
+            kinds.append(state.kind)
+        _label_lines(fig, ax, curves, texts, kinds)
+        _kind_legend(ax, kinds)
+        fig.suptitle(r"map against density $n = \alpha\,(V_g - V_0)$",
+                     fontsize=_style.FONT_SIZE + 1)
+    return fig
+
+
+# --- residuals and the index plot ----------------------------------------------
+
+def state_residuals(result):
+    """Residual gate voltage (V) of each state's ridge points from its fitted line.
+
+    Returns a list, one entry per state, of ``(field, residual, weight)``
+    arrays (empty arrays for a state with no assigned points).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from fanmap.results import FanResult, State
+    >>> r = FanResult(1e15, 0, 0, 0.0, 0, 0, 4, 1, "",
+    ...               states=[State("2", "integer", 0.5, 0.0, 2, 1.0, 2.0)])
+    >>> r.ridge_points = {"field": np.array([1.0, 2.0]), "gate": np.array([0.51, 0.99]),
+    ...                   "state": np.array([0, 0]), "weight": np.ones(2)}
+    >>> np.round(state_residuals(r)[0][1], 3).tolist()
+    [0.01, -0.01]
+    """
+    rp = result.ridge_points
+    out = []
+    if rp is None:
+        return [(np.empty(0), np.empty(0), np.empty(0)) for _ in result.states]
+    field = np.asarray(rp["field"], dtype=float)
+    gate = np.asarray(rp["gate"], dtype=float)
+    index = np.asarray(rp["state"], dtype=int)
+    weight = np.asarray(rp.get("weight", np.ones_like(field)), dtype=float)
+    for i, state in enumerate(result.states):
+        mine = index == i
+        out.append((field[mine], gate[mine] - _state_gate(state, field[mine]), weight[mine]))
+    return out
+
+
+def plot_residuals(result, *, gate_step=None, max_columns=4):
+    """Residuals (mV) of every fitted line's ridge points versus field, one panel per state.
+
+    The grey band is ± half a gate step of the map (``gate_step``, V), the
+    resolution of a single trace; points inside it are sub-pixel agreement.
+    """
+    if result.ridge_points is None:
+        raise InputError("the result carries no ridge points, so residuals cannot be drawn; "
+                         "fit the map with fanmap.fanfit.fit_fan")
+    if not result.states:
+        raise InputError("the result has no fitted states to draw residuals for")
+    residuals = state_residuals(result)
+    count = len(result.states)
+    columns = min(max_columns, count)
+    rows = math.ceil(count / columns)
+    with rc_context(_style.rc_params()):
+        fig = _new_figure(2.0 * columns + 0.8, 1.55 * rows + 0.7)
+        axes = fig.subplots(rows, columns, sharex=True, sharey=True, squeeze=False)
+        finite_fields = np.asarray(result.ridge_points["field"], dtype=float)
+        b_max = float(np.nanmax(np.abs(finite_fields))) if finite_fields.size else 1.0
+        spread = np.concatenate([np.abs(r[1]) for r in residuals] + [np.zeros(1)]) * 1e3
+        y_lim = 1.4 * max(float(np.nanpercentile(spread, 99)), 1e-3)
+        for k, ax in enumerate(axes.flat):
+            if k >= count:
+                ax.set_visible(False)
+                continue
+            state = result.states[k]
+            field, resid, weight = residuals[k]
+            style = _style.SERIES_STYLES[k % len(_style.SERIES_STYLES)]
+            if gate_step:
+                ax.axhspan(-500 * gate_step, 500 * gate_step, color="#ececec", linewidth=0)
+            ax.axhline(0.0, color="#888888", linewidth=0.6)
+            if resid.size:
+                ax.plot(np.abs(field), resid * 1e3, linestyle="none", markersize=3,
+                        markeredgewidth=0, alpha=0.8, **style)
+                rms = float(np.sqrt(np.average(resid**2, weights=_safe_weights(weight))))
+                text = f"rms {rms * 1e3:.2g} mV, {resid.size} pts"
+            else:
+                text = "no points"
+            name = "(t, s)" if state.kind == "satellite" else "ν"
+            ax.set_title(f"{name} = {state_label(state)}  ({state.kind})",
+                         fontsize=_style.FONT_SIZE - 1)
+            ax.text(0.02, 0.04, text, transform=ax.transAxes, fontsize=_style.FONT_SIZE - 2,
+                    color="#333333")
+            ax.set_xlim(0, b_max * 1.02)
+            ax.set_ylim(-y_lim, y_lim)
+            if k % columns == 0:
+                ax.set_ylabel("residual (mV)")
+            if k >= count - columns:
+                ax.set_xlabel("|B| (T)")
+                ax.xaxis.set_tick_params(labelbottom=True)
+        unassigned = int(np.sum(np.asarray(result.ridge_points["state"]) < 0))
+        band = (f"; shaded: ± half a gate step ({500 * gate_step:.3g} mV)" if gate_step else "")
+        fig.suptitle(f"gate-voltage residuals of each fitted line ({unassigned} ridge points "
+                     f"not assigned to any state{band})", fontsize=_style.FONT_SIZE + 1)
+    return fig
+
+
+def _safe_weights(weight):
+    weight = np.where(np.isfinite(weight) & (weight > 0), weight, 0.0)
+    return weight if weight.sum() > 0 else np.ones_like(weight)
+
+
+def index_plot_data(crosschecks):
+    """The Landau index plot inside a cross-check dict, or None.
+
+    Accepts ``crosschecks["index_plot"]`` as a dict with arrays
+    ``inverse_field`` (1/T) and ``index`` (N), and optionally ``slope`` (T,
+    the oscillation frequency), ``intercept`` and ``intercept_stderr``.
+    """
+    if not crosschecks:
+        return None
+    data = crosschecks.get("index_plot")
+    if not isinstance(data, dict):
+        return None
+    x = np.asarray(data.get("inverse_field", []), dtype=float)
+    y = np.asarray(data.get("index", []), dtype=float)
+    if x.size == 0 or x.size != y.size:
+        return None
+    return {"inverse_field": x, "index": y, "slope": data.get("slope"),
+            "intercept": data.get("intercept", crosschecks.get("index_plot_intercept")),
+            "intercept_stderr": data.get("intercept_stderr",
+                                         crosschecks.get("index_plot_intercept_stderr"))}
+
+
+def plot_index_plot(result):
+    """Landau index N versus 1/B of the oscillation minima, with its straight-line fit.
+
+    The intercept at 1/B = 0 is the Berry-phase offset γ: ½ for Berry phase π,
+    0 for 0 or 2π (standard result; e.g. Zhang et al., Nature 438, 201 (2005)).
+    """
+    data = index_plot_data(result.crosschecks)
+    if data is None:
+        raise InputError("the result has no Landau index-plot data; run the cross-checks")
+    x, y = data["inverse_field"], data["index"]
+    with rc_context(_style.rc_params()):
+        fig = _new_figure(5.0, 3.8)
+        ax = fig.add_subplot()
+        style = _style.SERIES_STYLES[0]
+        ax.plot(x, y, linestyle="none", markersize=5, label="minima", **style)
+        slope, intercept = data["slope"], data["intercept"]
+        if slope is not None and intercept is not None and np.isfinite([slope, intercept]).all():
+            xs = np.linspace(0, x.max() * 1.05, 50)
+            err = data["intercept_stderr"]
+            err_text = f" ± {err:.2g}" if err is not None and np.isfinite(err) else ""
+            ax.plot(xs, intercept + slope * xs, color=_style.SERIES_STYLES[1]["color"],
+                    linestyle="--", linewidth=1.2,
+                    label=_text_minus(f"fit: intercept {intercept:.3f}{err_text}"))
+        for ref, text in ((0.5, "γ = ½ (Berry phase π)"), (0.0, "γ = 0 (0 or 2π)")):
+            ax.axhline(ref, color="#999999", linewidth=0.6, linestyle=":")
+            ax.text(x.max() * 1.04, ref, text, ha="right", va="bottom",
+                    fontsize=_style.FONT_SIZE - 2, color="#555555")
+        ax.set_xlim(0, x.max() * 1.05)
+        ax.set_xlabel("1/B (1/T)")
+        ax.set_ylabel("Landau index N")
+        ax.legend(loc="upper left")
+        fig.suptitle("Landau index plot", fontsize=_style.FONT_SIZE + 1)
+    return fig
+
+
+# --- gate maps -----------------------------------------------------------------
+
+def _gate_signal(gate_map):
+    name = S.RXX if S.RXX in gate_map.data_vars else next(iter(gate_map.data_vars), None)
+    if name is None:
+        raise InputError("the gate map has no data variable to draw")
+    da = gate_map[name]
+    if set(da.dims) != {S.BOTTOM_GATE, S.TOP_GATE}:
+        raise InputError(f"{name!r} has dimensions {da.dims}; a gate map needs "
+                         f"({S.BOTTOM_GATE!r}, {S.TOP_GATE!r})")
+    return da.transpose(S.BOTTOM_GATE, S.TOP_GATE).sortby(S.BOTTOM_GATE).sortby(S.TOP_GATE)
+
+
+def _gate_lines(result, top):
+    """Bottom-gate voltages of the neutrality (n = 0) and D = 0 lines at top-gate values."""
+    ratio = result.top_capacitance / result.bottom_capacitance
+    shift = ratio * (top - result.top_offset)
+    return result.bottom_offset - shift, result.bottom_offset + shift
+
+
+def plot_gate_maps(gate_maps, result, *, scale="auto"):
+    """Raw dual-gate maps with the ridges found and the fitted n = 0 and D = 0 lines.
+
+    ``gate_maps`` is one gate map or a sequence of them (one panel each, e.g.
+    several fields).  Ridge points are read from ``result.extras["ridge_points"]``
+    (dict of ``top_gate``, ``bottom_gate`` arrays, optionally ``map`` index) when present.
+    """
+    maps = [gate_maps] if hasattr(gate_maps, "data_vars") else list(gate_maps)
+    if not maps:
+        raise InputError("no gate map to draw")
+    ridges = (result.extras or {}).get("ridge_points")
+    columns = min(len(maps), 3)
+    rows = math.ceil(len(maps) / columns)
+    with rc_context(_style.rc_params()):
+        fig = _new_figure(4.4 * columns + 0.6, 3.9 * rows + 0.5)
+        axes = fig.subplots(rows, columns, squeeze=False)
+        for k, ax in enumerate(axes.flat):
+            if k >= len(maps):
+                ax.set_visible(False)
+                continue
+            da = _gate_signal(maps[k])
+            top, bottom = da[S.TOP_GATE].values, da[S.BOTTOM_GATE].values
+            values, norm, used = colour_scale(da.values, scale)
+            mesh = ax.pcolormesh(top, bottom, values, norm=norm, cmap=_style.GATE_COLORMAP,
+                                 shading="nearest", rasterized=True)
+            fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.06).set_label(
+                _colour_bar_label(da, used))
+            if ridges is not None:
+                rt = np.asarray(ridges.get("top_gate", []), dtype=float)
+                rb = np.asarray(ridges.get("bottom_gate", []), dtype=float)
+                which = np.asarray(ridges.get("map", np.zeros(rt.size)), dtype=int)
+                mine = which == k if which.size == rt.size else np.ones(rt.size, bool)
+                ax.plot(rt[mine], rb[mine], **{**_style.RIDGE_POINT_STYLE, "markersize": 3})
+            if np.isfinite([result.top_capacitance, result.bottom_capacitance]).all() and \
+                    result.bottom_capacitance > 0:
+                t = np.linspace(top.min(), top.max(), 100)
+                neutral, balanced = _gate_lines(result, t)
+                ink = _style.kind_style("integer")
+                ax.plot(t, neutral, color=ink["color"], linewidth=1.3,
+                        path_effects=_style.halo(), label="n = 0 (fit)")
+                ax.plot(t, balanced, color=_style.kind_style("broken-symmetry")["color"],
+                        linestyle=(0, (5, 2)), linewidth=1.2, path_effects=_style.halo(),
+                        label="D = 0 (fit)")
+                ax.legend(loc="upper right", facecolor="#3a3a3a", edgecolor="none",
+                          labelcolor="#ffffff", framealpha=0.85)
+            ax.set_xlim(top.min(), top.max())
+            ax.set_ylim(bottom.min(), bottom.max())
+            ax.set_xlabel(_axis_label(da[S.TOP_GATE], "top gate voltage"))
+            ax.set_ylabel(_axis_label(da[S.BOTTOM_GATE], "bottom gate voltage"))
+            field = maps[k].coords.get(S.FIELD)
+            if field is not None and field.size == 1:
+                ax.set_title(f"B = {float(field):.3g} T")
+        fig.suptitle("dual-gate map" + ("s" if len(maps) > 1 else ""),
+                     fontsize=_style.FONT_SIZE + 1)
+    return fig
+
+
+def _displacement_axis(coord):
+    """Displacement values and axis label in V/nm (D/ε0) when the units allow it."""
+    units = str(coord.attrs.get("units", "")).replace(" ", "").replace("^", "")
+    values = np.asarray(coord.values, dtype=float)
+    if units in ("Cm-2", "C/m2", "C/m**2", "Cm**-2"):
+        return values / VACUUM_PERMITTIVITY / 1e9, r"displacement $D/\varepsilon_0$ (V/nm)"
+    if units in ("V/m", "Vm-1"):
+        return values / 1e9, r"displacement $D/\varepsilon_0$ (V/nm)"
+    if units in ("V/nm", "Vnm-1"):
+        return values, r"displacement $D/\varepsilon_0$ (V/nm)"
+    return values, _axis_label(coord, "displacement")
+
+
+def plot_nd_map(nd_map, result=None, *, scale="auto"):
+    """A map on (density, displacement): density in 10^12 cm^-2, D/ε0 in V/nm."""
+    da = nd_map
+    if hasattr(nd_map, "data_vars"):
+        name = S.RXX if S.RXX in nd_map.data_vars else next(iter(nd_map.data_vars), None)
+        if name is None:
+            raise InputError("the (n, D) map has no data variable to draw")
+        da = nd_map[name]
+    if set(da.dims) != {"density", "displacement"}:
+        raise InputError(f"the (n, D) map has dimensions {da.dims}; expected "
+                         "('displacement', 'density')")
+    da = da.transpose("displacement", "density").sortby("density").sortby("displacement")
+    density = np.asarray(da["density"].values, dtype=float)
+    density_units = str(da["density"].attrs.get("units", "m-2")).replace(" ", "")
+    if density_units in ("m-2", "m^-2", "1/m2", "m**-2", ""):
+        density = density / DENSITY_UNIT
+        density_label = _DENSITY_LABEL
+    else:
+        density_label = _axis_label(da["density"], "density")
+    displacement, displacement_label = _displacement_axis(da["displacement"])
+    values, norm, used = colour_scale(da.values, scale)
+    with rc_context(_style.rc_params()):
+        fig = _new_figure(6.2, 4.8)
+        ax = fig.add_subplot()
+        mesh = ax.pcolormesh(density, displacement, values, norm=norm,
+                             cmap=_style.GATE_COLORMAP, shading="nearest", rasterized=True)
+        fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.05).set_label(_colour_bar_label(da, used))
+        ax.axvline(0.0, color="#ffffff", linewidth=0.6, linestyle=":")
+        ax.axhline(0.0, color="#ffffff", linewidth=0.6, linestyle=":")
+        ax.set_xlabel(density_label)
+        ax.set_ylabel(displacement_label)
+        title = "map on density and displacement"
+        if result is not None and getattr(result, "displacement_convention", ""):
+            title += f"\n({result.displacement_convention})"
+        fig.suptitle(title, fontsize=_style.FONT_SIZE + 1)
+    return fig
+
+
+# --- batch ---------------------------------------------------------------------
+
+def _row_label(row, k):
+    device, cooldown = row.get("device"), row.get("cooldown")
+    if device is not None and cooldown is not None:
+        return f"{device} / {cooldown}"
+    for key in ("name", "map", "source", "device"):
+        if row.get(key):
+            return str(row[key]).rsplit("/", 1)[-1]
+    return f"map {k + 1}"
+
+
+def _as_float(value):
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return float("nan")
+    return value
+
+
+def plot_batch_summary(rows):
+    """Lever arm and zero-density voltage of every map in a batch, with error bars.
+
+    ``rows`` is a list of dicts with ``density_per_volt`` (m^-2 V^-1),
+    ``zero_density_voltage`` (V), their ``*_stderr``, and ``device`` /
+    ``cooldown`` (or ``name``) for the labels.  Rows without a value (failed
+    maps) are listed and marked "no fit".
+    """
+    rows = list(rows)
+    if not rows:
+        raise InputError("the batch table is empty; nothing to summarise")
+    labels = [_row_label(r, k) for k, r in enumerate(rows)]
+    alpha = np.array([_as_float(r.get("density_per_volt")) for r in rows]) / 1e14
+    alpha_err = np.array([_as_float(r.get("density_per_volt_stderr")) for r in rows]) / 1e14
+    v0 = np.array([_as_float(r.get("zero_density_voltage")) for r in rows])
+    v0_err = np.array([_as_float(r.get("zero_density_voltage_stderr")) for r in rows])
+    groups = [str(r.get("device", "")) for r in rows]
+    group_index = {g: i for i, g in enumerate(dict.fromkeys(groups))}
+    y = np.arange(len(rows))[::-1]
+    with rc_context(_style.rc_params()):
+        fig = _new_figure(7.4, 1.2 + 0.32 * len(rows))
+        axes = fig.subplots(1, 2, sharey=True)
+        for ax, values, errors, xlabel in (
+                (axes[0], alpha, alpha_err, r"lever arm $\alpha$ ($10^{10}$ cm$^{-2}$ V$^{-1}$)"),
+                (axes[1], v0, v0_err, r"zero-density voltage $V_0$ (V)")):
+            for k in range(len(rows)):
+                style = _style.SERIES_STYLES[group_index[groups[k]] % len(_style.SERIES_STYLES)]
+                if np.isfinite(values[k]):
+                    err = errors[k] if np.isfinite(errors[k]) else None
+                    ax.errorbar([values[k]], [y[k]], xerr=None if err is None else [err],
+                                capsize=2.5, markersize=5, elinewidth=1, linestyle="none",
+                                **style)
+                else:
+                    ax.text(0.5, y[k], "no fit", transform=ax.get_yaxis_transform(),
+                            ha="center", va="center", color="#a33", fontsize=_style.FONT_SIZE - 1)
+            ax.set_xlabel(xlabel)
+            ax.grid(axis="x", color="#e3e3e3", linewidth=0.6)
+            ax.margins(x=0.15)
+        axes[0].set_yticks(y, labels)
+        axes[0].set_ylim(-0.7, len(rows) - 0.3)
+        fig.suptitle("batch summary: calibration per device / cooldown (± 1 standard error)",
+                     fontsize=_style.FONT_SIZE + 1)
+    return fig
