@@ -1,0 +1,896 @@
+"""Superlattice (moire) fans: satellite lines, band fillings, cell density, twist angle.
+
+In a moire device the Landau fan does not converge on one point.  Extra
+families of quantum Hall minima start where the superlattice band holds s
+carriers per moire cell,
+
+    n = t eB/h + s n0,
+
+with integer Landau slope t and band filling s (the Diophantine relation of
+a Landau level in a periodic potential).  :func:`analyse_superlattice` takes
+the ridge points the main fan fit keeps (``FanResult.ridge_points``), finds
+the straight lines whose B -> 0 intercepts are off the main fan origin, fits
+each on its own, and then fits one cell density n0 that makes every
+intercept an integer (or, where the data demand it, a simple fraction)
+multiple s of n0, jointly with the main fan's lever arm alpha and
+zero-density voltage V0.  From n0 follow the full-filling density
+n_s = flavours * n0, the moire wavelength and, for graphene moires, the
+twist angle.  The function also marks zero-field resistance peaks at band
+fillings and reports horizontal features (constant field across a range of
+density, at simple fractions of a flux quantum per cell) with the cell area
+they imply, without forcing them into the fan.
+
+All quantities are SI (m^-2, m, V, T); angles in degrees where the name
+says ``_deg``.
+"""
+
+from dataclasses import dataclass, field
+from fractions import Fraction
+
+import numpy as np
+from scipy import ndimage, signal
+
+from . import _schema as S
+from .errors import InputError, NoFanError
+from .physics import (FLUX_QUANTUM_SINGLE_ELECTRON, GRAPHENE_LATTICE_CONSTANT,
+                      moire_wavelength, twist_angle_from_wavelength)
+from .results import State
+
+__all__ = ["SuperlatticeFinding", "analyse_superlattice", "superlattice_geometry"]
+
+_PHI0 = FLUX_QUANTUM_SINGLE_ELECTRON
+#: Presets for which a superlattice is expected; "auto" searches and says what it saw.
+_MOIRE_MATERIALS = ("moire-graphene",)
+_MAIN_KINDS = ("integer", "broken-symmetry")
+
+
+@dataclass
+class SuperlatticeFinding:
+    """What :func:`analyse_superlattice` found on one fan map.
+
+    Attributes
+    ----------
+    superlattice : dict or None
+        The ``FanResult.superlattice`` entry: ``density`` (n_s, full filling),
+        ``cell_density`` (n0), ``wavelength``, ``twist_angle_deg``, each with
+        ``_stderr``, plus the flavour count, the joint lever arm and
+        zero-density voltage and how the uncertainties were obtained.
+        None when no superlattice was seen.
+    satellites : list of State
+        One per satellite line, ``kind="satellite"``, ``filling`` = t (text),
+        ``band_filling`` = s.
+    zero_field_peaks : list of dict
+        Resistance peaks of the lowest-field rows away from neutrality.
+    horizontal_features : list of dict
+        Minima at constant field across a range of density.
+    notes : list of str
+        Warnings and the plain-language verdict ("no superlattice seen", ...).
+    seen : bool
+        Whether a superlattice was seen.
+    offset_lines : list of dict
+        Every line found off the main fan origin, including any that did not
+        fit the lattice (those are not reported as satellites).
+    """
+
+    superlattice: dict | None
+    satellites: list = field(default_factory=list)
+    zero_field_peaks: list = field(default_factory=list)
+    horizontal_features: list = field(default_factory=list)
+    notes: list = field(default_factory=list)
+    seen: bool = False
+    offset_lines: list = field(default_factory=list)
+
+
+# --- geometry ------------------------------------------------------------------
+
+def superlattice_geometry(cell_density, cell_density_stderr=0.0, *, flavours=4,
+                          lattice_constant=GRAPHENE_LATTICE_CONSTANT):
+    """Full-filling density, moire wavelength and twist angle from the cell density n0.
+
+    Parameters
+    ----------
+    cell_density : float
+        n0, one carrier per moire cell (m^-2).
+    cell_density_stderr : float
+        Standard error of n0, propagated to every output (first order).
+    flavours : int
+        Carriers per cell at full filling (4 for graphene moires).
+    lattice_constant : float or None
+        Lattice constant of the twisted layers (m); None skips the twist angle
+        (for aligned heterostructures the lattice mismatch enters instead).
+
+    Returns
+    -------
+    dict
+        ``density`` (n_s), ``cell_density``, ``cell_area``, ``wavelength``,
+        ``twist_angle_deg`` (exact, lambda = a / (2 sin(theta/2))) and
+        ``twist_angle_small_angle_deg`` (lambda = a / theta), each with
+        ``_stderr`` where it applies.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from fanmap.physics import moire_cell_density, moire_wavelength
+    >>> n0 = moire_cell_density(moire_wavelength(np.radians(1.1)))
+    >>> g = superlattice_geometry(n0, 0.01 * n0)
+    >>> f"{g['twist_angle_deg']:.4f} +- {g['twist_angle_deg_stderr']:.4f}"
+    '1.1000 +- 0.0055'
+    >>> f"{g['density'] * 1e-4:.3e}"
+    '2.813e+12'
+    """
+    n0 = float(cell_density)
+    sigma = float(cell_density_stderr)
+    if not np.isfinite(n0) or n0 <= 0:
+        raise InputError(f"cell density must be a positive number of m^-2, got {cell_density!r}")
+    wavelength = np.sqrt(2.0 / (np.sqrt(3.0) * n0))
+    out = {
+        "density": flavours * n0, "density_stderr": flavours * sigma,
+        "cell_density": n0, "cell_density_stderr": sigma,
+        "cell_area": 1.0 / n0, "cell_area_stderr": sigma / n0**2,
+        "wavelength": wavelength, "wavelength_stderr": 0.5 * wavelength * sigma / n0,
+        "flavours": int(flavours),
+        "lattice_constant": lattice_constant,
+        "twist_angle_deg": None, "twist_angle_deg_stderr": None,
+        "twist_angle_small_angle_deg": None,
+    }
+    if lattice_constant is not None:
+        if lattice_constant / wavelength > 2:
+            raise InputError(f"cell density {n0:.3e} m^-2 is too high for a moire of "
+                             f"lattice constant {lattice_constant:.3e} m")
+        theta = np.degrees(twist_angle_from_wavelength(wavelength, lattice_constant))
+        # d theta / d n0 by a central difference: the exact formula has no neat closed form.
+        step = 1e-6 * n0
+        up = np.degrees(twist_angle_from_wavelength(np.sqrt(2 / (np.sqrt(3) * (n0 + step))),
+                                                    lattice_constant))
+        down = np.degrees(twist_angle_from_wavelength(np.sqrt(2 / (np.sqrt(3) * (n0 - step))),
+                                                      lattice_constant))
+        out["twist_angle_deg"] = float(theta)
+        out["twist_angle_deg_stderr"] = float(abs(up - down) / (2 * step) * sigma)
+        out["twist_angle_small_angle_deg"] = float(np.degrees(
+            twist_angle_from_wavelength(wavelength, lattice_constant, small_angle=True)))
+    return {k: (float(v) if isinstance(v, (float, np.floating)) else v) for k, v in out.items()}
+
+
+# --- the analysis --------------------------------------------------------------
+
+def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
+                         lattice_constant=GRAPHENE_LATTICE_CONSTANT, max_slope=12,
+                         max_band_filling=None, bootstrap=300, seed=0):
+    """Find satellite fans, fit the moire cell density and derive the twist angle.
+
+    Parameters
+    ----------
+    fan_map : xarray.Dataset
+        Fan map (dims ``field``, ``gate``; ``rxx`` in ohm).
+    fan_result : fanmap.results.FanResult
+        The main fan fit of the same map; its ``density_per_volt``,
+        ``zero_density_voltage``, ``states`` and ``ridge_points`` are used.
+    flavours : int
+        Carriers per moire cell at full filling (4 for graphene moires; 2 for
+        a spin-degenerate single-valley band, e.g. some TMD heterobilayers).
+    material : str
+        ``"moire-graphene"`` (twist angle of a twisted graphene bilayer),
+        ``"auto"`` (search; the twist angle assumes a twisted graphene
+        bilayer, and the notes say whether a superlattice was seen) or any
+        other preset (searched, but no twist angle is derived).
+    lattice_constant : float or None
+        Lattice constant for the twist angle (m); None gives no twist angle.
+    max_slope : int
+        Largest |t| searched for satellite lines.
+    max_band_filling : int, optional
+        Largest |s| accepted (default ``flavours``: satellites beyond full filling
+        of the first band are rare and too easily explained by chance).
+    bootstrap : int
+        Bootstrap resamples over lines for the uncertainties (0: covariance only).
+    seed : int
+        Seed of the bootstrap.
+
+    Returns
+    -------
+    SuperlatticeFinding
+    """
+    gate, fields, rxx = _check_map(fan_map)
+    alpha = float(fan_result.density_per_volt)
+    v0 = float(fan_result.zero_density_voltage)
+    if not np.isfinite(alpha) or alpha == 0 or not np.isfinite(v0):
+        raise NoFanError("the main fan fit has no finite lever arm and zero-density voltage; "
+                         "a superlattice can only be analysed on top of a main fan fit")
+    flavours = int(flavours)
+    if flavours < 1:
+        raise InputError(f"flavours must be a positive integer, got {flavours}")
+    max_band_filling = flavours if max_band_filling is None else int(max_band_filling)
+    notes = []
+    if material not in ("auto",) + _MOIRE_MATERIALS:
+        notes.append(f"material {material!r} expects no superlattice; searched anyway, "
+                     "no twist angle derived")
+        lattice_constant = None
+
+    points = _ridge_points(fan_result)
+    gate_step = float(np.median(np.abs(np.diff(np.sort(np.unique(gate))))))
+    scale = _Scale(alpha=alpha, v0=v0, gate_step=gate_step)
+    main_states = [(i, st) for i, st in enumerate(fan_result.states)
+                   if st.kind != "satellite"]
+
+    free = _unassigned_points(points, main_states, scale)
+    lines = _find_offset_lines(points, free, scale, gate, fields, max_slope)
+    lattice = _fit_lattice(lines, scale, flavours, max_band_filling, notes)
+
+    rng = np.random.default_rng(seed)
+    superlattice = None
+    satellites = []
+    if lattice is not None:
+        joint = _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng)
+        superlattice = _superlattice_dict(joint, flavours, lattice_constant, lattice, fan_result,
+                                          notes)
+        if material == "auto" and lattice_constant is not None:
+            notes.append("twist angle assumes a twisted graphene bilayer "
+                         f"(lattice constant {lattice_constant * 1e9:.3f} nm)")
+        satellites = _satellite_states(lines, lattice)
+    elif lines:
+        notes.append(f"{len(lines)} line(s) off the main fan origin, but no consistent set of "
+                     "band fillings: not reported as satellites")
+
+    cell_density = superlattice["cell_density"] if superlattice else None
+    cell_sigma = superlattice["cell_density_stderr"] if superlattice else None
+    peaks = _zero_field_peaks(gate, fields, rxx, scale, cell_density, cell_sigma, flavours,
+                              lattice, lines, notes)
+    horizontal = _horizontal_features(gate, fields, rxx, scale, cell_density, cell_sigma,
+                                      notes)
+    if superlattice is not None:
+        areas = [h["implied_cell_area"] for h in horizontal if h["flux_per_cell"] is not None]
+        if areas:
+            superlattice["cell_area_from_horizontal_features"] = float(np.median(areas))
+        checked = [p["agrees_with_satellites"] for p in peaks
+                   if p["agrees_with_satellites"] is not None]
+        superlattice["zero_field_peaks_agree"] = all(checked) if checked else None
+        if checked and not all(checked):
+            notes.append("a zero-field peak at a satellite band filling does not sit at the "
+                         "satellite intercept")
+
+    seen = superlattice is not None
+    if seen:
+        notes.insert(0, f"superlattice seen: {len(satellites)} satellite line(s) at band "
+                        f"fillings s = {', '.join(_fmt_s(s) for s in lattice['band_fillings'])}")
+    else:
+        notes.insert(0, "no superlattice seen")
+    return SuperlatticeFinding(superlattice=superlattice, satellites=satellites,
+                               zero_field_peaks=peaks, horizontal_features=horizontal,
+                               notes=notes, seen=seen,
+                               offset_lines=[_line_summary(line, _jsonable_s(
+                                   lattice["assigned"][j]) if lattice and j in lattice["assigned"]
+                                   else None) for j, line in enumerate(lines)])
+
+
+# --- input -------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class _Scale:
+    alpha: float       # m^-2 V^-1
+    v0: float          # V
+    gate_step: float   # V
+
+    @property
+    def volts_per_tesla(self):
+        """Gate slope of a line of unit filling, 1 / (alpha h/e)."""
+        return 1.0 / (self.alpha * _PHI0)
+
+    def density(self, gate):
+        return self.alpha * (np.asarray(gate) - self.v0)
+
+
+def _check_map(fan_map):
+    for name in (S.FIELD, S.GATE):
+        if name not in fan_map.coords:
+            raise InputError(f"fan map has no {name!r} coordinate; pass a fan map "
+                             "(dims field, gate) as read by fanmap.reading.open_map")
+    if S.RXX not in fan_map:
+        raise InputError("fan map has no 'rxx' variable; the superlattice analysis needs R_xx")
+    rxx = fan_map[S.RXX].transpose(S.FIELD, S.GATE).values.astype(float)
+    gate = np.asarray(fan_map[S.GATE].values, dtype=float)
+    fields = np.asarray(fan_map[S.FIELD].values, dtype=float)
+    if gate.size < 8 or fields.size < 4:
+        raise NoFanError(f"fan map of {fields.size} x {gate.size} points is too small "
+                         "for a superlattice analysis")
+    return gate, fields, rxx
+
+
+def _ridge_points(fan_result):
+    rp = fan_result.ridge_points
+    if not rp:
+        raise InputError("the fan result carries no ridge points; pass the result of "
+                         "fanmap.fanfit.fit_fan, which keeps them in FanResult.ridge_points")
+    # lines of the fan are V = V0 + slope |B| (the fitter's convention)
+    b = np.abs(np.asarray(rp["field"], dtype=float))
+    v = np.asarray(rp["gate"], dtype=float)
+    state = np.asarray(rp.get("state", np.full(b.size, -1)), dtype=int)
+    weight = np.asarray(rp.get("weight", np.ones(b.size)), dtype=float)
+    if "row" in rp:
+        row = np.asarray(rp["row"], dtype=int)
+    else:
+        row = np.unique(b, return_inverse=True)[1]
+    if not (b.size == v.size == state.size == weight.size == row.size):
+        raise InputError("ridge points of the fan result have arrays of different lengths")
+    ok = np.isfinite(b) & np.isfinite(v) & np.isfinite(weight) & (weight > 0) & (b != 0)
+    b, v, state, weight, row = b[ok], v[ok], state[ok], weight[ok], row[ok]
+    if weight.size:
+        weight = weight / np.median(weight)
+    return {"field": b, "gate": v, "state": state, "weight": weight, "row": row}
+
+
+def _unassigned_points(points, main_states, scale):
+    """Mask of ridge points that belong to no main-fan line."""
+    free = np.ones(points["field"].size, bool)
+    tol = 2.0 * scale.gate_step
+    main_index = {i for i, _ in main_states}
+    free &= ~np.isin(points["state"], list(main_index))
+    for _, st in main_states:
+        if np.isfinite(st.slope) and np.isfinite(st.intercept):
+            free &= np.abs(points["gate"] - (st.intercept + st.slope * points["field"])) > tol
+    return free
+
+
+# --- satellite lines -----------------------------------------------------------------
+
+def _find_offset_lines(points, free, scale, gate, fields, max_slope):
+    """Straight lines with integer Landau slope t whose intercept is off the fan origin.
+
+    Every free ridge point votes, for each trial t, for the B = 0 intercept
+    u = V - t B / (alpha h/e) of the line of slope t through it; points on
+    one line pile up in one bin, points of other lines smear out.  The
+    strongest pile is fitted as a free line, its points claimed, and so on.
+    """
+    b, v, row = points["field"], points["gate"], points["row"]
+    k = scale.volts_per_tesla
+    step = scale.gate_step
+    tol = 2.0 * step
+    row_fields = np.unique(np.abs(fields[fields != 0]))
+    n_rows = row_fields.size
+    span = np.ptp(np.abs(fields))
+    min_points = max(8, int(0.12 * n_rows))
+    min_span = 0.2 * span
+    origin_tol = 4.0 * step
+
+    gate_lo, gate_hi = np.min(gate), np.max(gate)
+    b_max = np.max(np.abs(fields))
+    candidates = []
+    idx = np.flatnonzero(free)
+    if idx.size < min_points:
+        return []
+    for t in range(-max_slope, max_slope + 1):
+        if t == 0:
+            continue
+        u = v[idx] - t * k * b[idx]
+        # bins over every intercept a line of slope t crossing the window can have, so that
+        # the median count is the background even when few points are free
+        reach = t * k * b_max
+        edges = np.arange(gate_lo - max(reach, 0) - 2 * step, gate_hi - min(reach, 0) + 3 * step,
+                          step)
+        if edges.size < 4:
+            continue
+        counts, _ = np.histogram(u, edges)
+        window = np.convolve(counts, np.ones(3), mode="same")
+        background = np.median(window)
+        height = max(min_points, background + 5 * np.sqrt(background + 1))
+        peaks, _ = signal.find_peaks(window, height=height, distance=2)
+        centres = 0.5 * (edges[:-1] + edges[1:])
+        for p in peaks:
+            candidates.append((window[p], t, centres[p]))
+    candidates.sort(key=lambda c: -c[0])
+
+    claimed = ~free
+    lines = []
+    for _, t, u0 in candidates:
+        line = _grow_line(b, v, row, points["weight"], claimed, t, u0, k, tol)
+        if line is None or line["points"] < min_points:
+            continue
+        if np.ptp(b[line["members"]]) < min_span:
+            continue
+        # a real line is resolved on most rows it crosses; crossings of other lines that
+        # happen to align are sparse
+        rows_spanned = np.sum((row_fields >= line["field_min"]) & (row_fields <= line["field_max"]))
+        if line["points"] < 0.6 * rows_spanned:
+            continue
+        if abs(line["slope_filling"] - t) > 0.3 or abs(line["intercept"] - scale.v0) < origin_tol:
+            continue
+        if line["rms"] > 0.6 * step:
+            continue   # not straight: a background valley or a chain of crossings
+        line["t"] = t
+        line["intercept_density"] = scale.alpha * (line["intercept"] - scale.v0)
+        line["intercept_density_stderr"] = abs(scale.alpha) * line["intercept_stderr"]
+        claimed[line["members"]] = True
+        lines.append(line)
+    return lines
+
+
+def _grow_line(b, v, row, weight, claimed, t, u0, k, tol):
+    """Collect the points of one line (one per field row) and fit it freely."""
+    slope, intercept = t * k, u0
+    members = None
+    for _ in range(3):
+        resid = v - (intercept + slope * b)
+        near = np.flatnonzero(~claimed & (np.abs(resid) < tol))
+        if near.size < 3:
+            return None
+        # one point per field row: the closest one
+        order = np.lexsort((np.abs(resid[near]), row[near]))
+        near = near[order]
+        keep = np.ones(near.size, bool)
+        keep[1:] = row[near][1:] != row[near][:-1]
+        members = near[keep]
+        if np.unique(b[members]).size < 3:
+            return None
+        fit = _line_fit(b[members], v[members], weight[members])
+        if fit is None:
+            return None
+        intercept, slope = fit[0], fit[1]
+    a, s, cov, rms = fit
+    return {"members": members, "points": int(members.size), "intercept": float(a),
+            "slope": float(s), "intercept_stderr": float(np.sqrt(cov[0, 0])),
+            "slope_stderr": float(np.sqrt(cov[1, 1])), "rms": float(rms),
+            "slope_filling": float(s / k), "slope_filling_stderr": float(np.sqrt(cov[1, 1]) / k),
+            "field_min": float(np.min(np.abs(b[members]))),
+            "field_max": float(np.max(np.abs(b[members]))),
+            "weight": float(weight[members].sum())}
+
+
+def _line_fit(x, y, w):
+    """Weighted straight-line fit y = a + s x with covariance (scaled by the residuals)."""
+    X = np.column_stack([np.ones_like(x), x])
+    sw = np.sqrt(w)
+    try:
+        coef, *_ = np.linalg.lstsq(X * sw[:, None], y * sw, rcond=None)
+        resid = y - X @ coef
+        dof = max(x.size - 2, 1)
+        s2 = np.sum(w * resid**2) / dof
+        cov = np.linalg.inv((X * w[:, None]).T @ X) * s2
+    except np.linalg.LinAlgError:
+        return None
+    return coef[0], coef[1], cov, float(np.sqrt(np.mean(resid**2)))
+
+
+# --- the lattice: one n0 for every intercept --------------------------------------------
+
+def _families(lines, scale):
+    """Group lines whose intercepts coincide (lines from one band filling)."""
+    order = sorted(range(len(lines)), key=lambda j: lines[j]["intercept_density"])
+    families = []
+    for j in order:
+        c = lines[j]["intercept_density"]
+        tol = _intercept_tol(lines[j], scale)
+        if families and abs(c - families[-1]["density"]) < max(tol, families[-1]["tol"]):
+            fam = families[-1]
+            fam["lines"].append(j)
+            w = np.array([1 / _intercept_tol(lines[i], scale) ** 2 for i in fam["lines"]])
+            cs = np.array([lines[i]["intercept_density"] for i in fam["lines"]])
+            fam["density"] = float(np.sum(w * cs) / w.sum())
+            fam["tol"] = float(max(1 / np.sqrt(w.sum()) * 1.5, 1.5 * abs(scale.alpha) * scale.gate_step))
+        else:
+            families.append({"density": c, "tol": tol, "lines": [j]})
+    return families
+
+
+def _intercept_tol(line, scale):
+    """Tolerance on a line's intercept density: 3 sigma, at least 1.5 gate steps."""
+    return max(3 * line["intercept_density_stderr"], 1.5 * abs(scale.alpha) * scale.gate_step)
+
+
+def _fit_lattice(lines, scale, flavours, max_band_filling, notes):
+    """Choose n0 (and s per family) so that every intercept is a multiple s n0.
+
+    The real-number GCD is ambiguous by integer factors; the outermost
+    family is taken to be full filling, |s| = flavours, as is usual in
+    graphene moires (band insulators give the strongest satellites).  Only
+    when that fails does the plain GCD (largest n0 that fits) decide.
+    """
+    if len(lines) < 2:
+        return None
+    families = _families(lines, scale)
+    outer = max(families, key=lambda f: abs(f["density"]))
+    ranked = []
+    for k in range(1, max_band_filling + 1):
+        n0 = abs(outer["density"]) / k
+        fills, ok = [], []
+        for fam in families:
+            x = fam["density"] / n0
+            # a fractional filling needs a family of two or more lines to be believed
+            s = _band_filling(x, fam["tol"] / n0, fractions=len(fam["lines"]) >= 2)
+            fills.append(s)
+            ok.append(s is not None and abs(s) <= max_band_filling)
+        ranked.append((k, n0, fills, ok))
+    # explain as many resolved points as possible; fractions count only where integers fail
+    def explained(r):
+        return sum(sum(lines[j]["points"] for j in fam["lines"]) * (1.0 if isinstance(s, int) else 0.5)
+                   for fam, s, o in zip(families, r[2], r[3]) if o and s != 0)
+
+    best = max(explained(r) for r in ranked)
+    if best <= 0:
+        return None
+    pool = [r for r in ranked if explained(r) >= 0.999 * best]
+    chosen = next((r for r in pool if r[0] == flavours), None)
+    if chosen is None:
+        chosen = pool[0]
+        notes.append(f"the outermost satellite family is not at |s| = {flavours} (full filling); "
+                     "n0 taken as the largest cell density that makes every intercept a "
+                     "multiple of it: check against the zero-field peaks")
+    k, n0, fills, ok = chosen
+    assigned = {}
+    for fam, s, good_fam in zip(families, fills, ok):
+        if good_fam and s != 0:
+            for j in fam["lines"]:
+                assigned[j] = s
+        else:
+            notes.append(f"line family at n = {fam['density'] * 1e-4:.3e} cm^-2 is not at a "
+                         "band filling of the lattice: not reported as satellites")
+    if any(not isinstance(s, int) for s in assigned.values()):
+        notes.append("fractional band fillings needed to explain some intercepts")
+    if len(assigned) < 2:
+        return None
+    return {"cell_density_guess": n0, "assigned": assigned,
+            "band_fillings": sorted(set(assigned.values())), "families": families}
+
+
+def _band_filling(x, tol, fractions=True):
+    """Nearest integer to x within tol, else the nearest half or third, else None."""
+    s = round(x)
+    if abs(x - s) <= tol:
+        return int(s)
+    for q in ((2, 3) if fractions else ()):
+        frac = Fraction(round(x * q), q)
+        if frac.denominator == q and abs(x - float(frac)) <= tol and abs(x - s) > 3 * tol:
+            return frac
+    return None
+
+
+def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
+    """Joint weighted least squares of V0, 1/alpha and n0/alpha.
+
+    Every ridge point of a main-fan state (filling nu) and of a satellite
+    (t, s) satisfies V = V0 + (1/alpha) (t B e/h) + (n0/alpha) s, which is
+    linear in the three parameters; the covariance comes from the fit, a
+    bootstrap over whole lines checks it (points along a line are correlated).
+    Without main-fan points the main fit's V0 and alpha are held fixed.
+    """
+    b, v, w = points["field"], points["gate"], points["weight"]
+    groups = []   # (kind, design rows, targets, weights), one per line
+    for i, st in main_states:
+        nu = _filling_number(st.filling)
+        sel = points["state"] == i
+        if st.kind not in _MAIN_KINDS or not nu or sel.sum() < 3:
+            continue
+        X = np.column_stack([np.ones(sel.sum()), nu * b[sel] / _PHI0, np.zeros(sel.sum())])
+        groups.append(("main", X, v[sel], w[sel]))
+    for j, s in lattice["assigned"].items():
+        m = lines[j]["members"]
+        X = np.column_stack([np.ones(m.size), lines[j]["t"] * b[m] / _PHI0,
+                             np.full(m.size, float(s))])
+        groups.append(("satellite", X, v[m], w[m]))
+    main_idx = [i for i, g in enumerate(groups) if g[0] == "main"]
+    sat_idx = [i for i, g in enumerate(groups) if g[0] == "satellite"]
+    joint = len(main_idx) > 0
+    free = [0, 1, 2] if joint else [2]
+    fixed = np.array([scale.v0, 1.0 / scale.alpha, 0.0])
+    A_parts = [(g[1] * g[3][:, None]).T @ g[1] for g in groups]
+    y_parts = [(g[1] * g[3][:, None]).T @ g[2] for g in groups]
+
+    def solve(sel):
+        A = sum(A_parts[i] for i in sel)
+        y = sum(y_parts[i] for i in sel)
+        theta = fixed.copy()
+        rhs = y[free] - A[np.ix_(free, [k for k in range(3) if k not in free])] @ \
+            fixed[[k for k in range(3) if k not in free]]
+        theta[free] = np.linalg.solve(A[np.ix_(free, free)], rhs)
+        return theta, A
+
+    theta, A = solve(range(len(groups)))
+    X = np.concatenate([g[1] for g in groups])
+    y = np.concatenate([g[2] for g in groups])
+    wt = np.concatenate([g[3] for g in groups])
+    resid = y - X @ theta
+    s2 = np.sum(wt * resid**2) / max(y.size - len(free), 1)
+    cov = np.zeros((3, 3))
+    cov[np.ix_(free, free)] = np.linalg.inv(A[np.ix_(free, free)]) * s2
+    v0, beta, gamma = theta
+    grad_n0 = np.array([0.0, -gamma / beta**2, 1.0 / beta])
+    grad_alpha = np.array([0.0, -1.0 / beta**2, 0.0])
+    result = {"cell_density": float(gamma / beta),
+              "cell_density_fit_stderr": float(np.sqrt(grad_n0 @ cov @ grad_n0)),
+              "density_per_volt": float(1.0 / beta),
+              "density_per_volt_stderr": float(np.sqrt(grad_alpha @ cov @ grad_alpha))
+              if joint else float("nan"),
+              "zero_density_voltage": float(v0),
+              "zero_density_voltage_stderr": float(np.sqrt(cov[0, 0])) if joint else float("nan"),
+              "joint": joint, "rms_residual_gate": float(np.sqrt(np.mean(resid**2))),
+              "points": int(y.size)}
+
+    boot = []
+    if len(sat_idx) >= 3:
+        for _ in range(int(bootstrap)):
+            sel = list(rng.choice(sat_idx, len(sat_idx)))
+            if main_idx:
+                sel += list(rng.choice(main_idx, len(main_idx)))
+            try:
+                th, _ = solve(sel)
+            except np.linalg.LinAlgError:
+                continue
+            boot.append(th[2] / th[1])
+    result["cell_density_bootstrap_stderr"] = (float(np.std(boot, ddof=1)) if len(boot) >= 20
+                                               else float("nan"))
+    result["cell_density_stderr"] = result["cell_density_fit_stderr"]
+    result["stderr_from"] = "covariance"
+    if result["cell_density_bootstrap_stderr"] > result["cell_density_fit_stderr"]:
+        result["cell_density_stderr"] = result["cell_density_bootstrap_stderr"]
+        result["stderr_from"] = "bootstrap over lines"
+    return result
+
+
+def _filling_number(text):
+    try:
+        return float(Fraction(str(text)))
+    except (ValueError, ZeroDivisionError):
+        return None
+
+
+def _superlattice_dict(joint, flavours, lattice_constant, lattice, fan_result, notes):
+    geometry = superlattice_geometry(joint["cell_density"], joint["cell_density_stderr"],
+                                     flavours=flavours, lattice_constant=lattice_constant)
+    out = dict(geometry)
+    out.update({
+        "band_fillings": [_jsonable_s(s) for s in lattice["band_fillings"]],
+        "satellite_count": len(lattice["assigned"]),
+        "cell_density_fit_stderr": joint["cell_density_fit_stderr"],
+        "cell_density_bootstrap_stderr": joint["cell_density_bootstrap_stderr"],
+        "stderr_from": joint["stderr_from"],
+        "joint_fit": joint["joint"],
+        "density_per_volt": joint["density_per_volt"],
+        "density_per_volt_stderr": joint["density_per_volt_stderr"],
+        "zero_density_voltage": joint["zero_density_voltage"],
+        "zero_density_voltage_stderr": joint["zero_density_voltage_stderr"],
+        "rms_residual_gate": joint["rms_residual_gate"],
+        "full_filling_gate_voltages": [
+            joint["zero_density_voltage"] - geometry["density"] / joint["density_per_volt"],
+            joint["zero_density_voltage"] + geometry["density"] / joint["density_per_volt"]],
+    })
+    if geometry["twist_angle_deg"] is not None:
+        diff = abs(geometry["twist_angle_deg"] - geometry["twist_angle_small_angle_deg"])
+        if diff > geometry["twist_angle_deg_stderr"]:
+            notes.append(f"small-angle and exact twist formulas differ by {diff:.2g} deg, more "
+                         "than the uncertainty: the exact value is reported")
+    if joint["joint"]:
+        a0, sa = fan_result.density_per_volt, fan_result.density_per_volt_stderr
+        sj = joint["density_per_volt_stderr"]
+        sigma = np.hypot(sa if np.isfinite(sa) else 0.0, sj)
+        if sigma > 0 and abs(joint["density_per_volt"] - a0) > 3 * sigma:
+            notes.append("the joint fit with the satellites moves the lever arm by more than "
+                         "3 standard errors from the main fan fit")
+    return out
+
+
+def _satellite_states(lines, lattice):
+    states = []
+    for j in sorted(lattice["assigned"], key=lambda j: (float(lattice["assigned"][j]),
+                                                         lines[j]["t"])):
+        line = lines[j]
+        states.append(State(
+            filling=str(line["t"]), kind="satellite", slope=line["slope"],
+            intercept=line["intercept"], points=line["points"], field_min=line["field_min"],
+            field_max=line["field_max"], filling_value=line["slope_filling"],
+            filling_stderr=line["slope_filling_stderr"], onset_field=line["field_min"],
+            band_filling=_jsonable_s(lattice["assigned"][j])))
+    return states
+
+
+def _line_summary(line, band_filling):
+    return {"t": line["t"], "band_filling": band_filling, "slope": line["slope"],
+            "intercept": line["intercept"], "intercept_density": line["intercept_density"],
+            "intercept_density_stderr": line["intercept_density_stderr"],
+            "slope_filling": line["slope_filling"],
+            "slope_filling_stderr": line["slope_filling_stderr"], "points": line["points"],
+            "field_min": line["field_min"], "field_max": line["field_max"]}
+
+
+def _jsonable_s(s):
+    return int(s) if isinstance(s, int) else float(s)
+
+
+def _fmt_s(s):
+    return f"{s:+d}" if isinstance(s, int) else f"{'+' if s > 0 else ''}{s}"
+
+
+# --- zero-field peaks ----------------------------------------------------------------
+
+def _log_resistance(rxx):
+    """log10 |R_xx|, with non-positive and missing values as NaN."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.log10(np.abs(rxx))
+    out[~np.isfinite(out)] = np.nan
+    return out
+
+
+def _zero_field_peaks(gate, fields, rxx, scale, n0, n0_sigma, flavours, lattice, lines, notes):
+    """Resistance peaks of the lowest-field rows, away from neutrality, at band fillings."""
+    absb = np.abs(fields)
+    low = absb <= absb.min() + max(0.02 * np.ptp(absb), 1e-9)
+    if absb.min() > 0.5:
+        notes.append(f"no zero-field row: band-filling peaks taken from the lowest field, "
+                     f"{absb.min():.2f} T")
+    order = np.argsort(gate)
+    g = gate[order]
+    profile = np.nanmean(_log_resistance(rxx[low][:, order]), axis=0)
+    good = np.isfinite(profile)
+    if good.sum() < 8:
+        return []
+    profile = np.interp(g, g[good], profile[good])
+    smooth = ndimage.gaussian_filter1d(profile, 1.0)
+    noise = 1.4826 * np.median(np.abs(np.diff(profile) - np.median(np.diff(profile)))) / np.sqrt(2)
+    prominence = max(8 * noise, 0.02)
+    idx, props = signal.find_peaks(smooth, prominence=prominence)
+    if idx.size == 0:
+        return []
+    widths = signal.peak_widths(smooth, idx, rel_height=0.5)[0]
+    step = scale.gate_step
+    family_density = {}
+    if lattice is not None:
+        for j, s in lattice["assigned"].items():
+            family_density.setdefault(s, []).append(lines[j]["intercept_density"])
+    peaks = []
+    for p, prom, width in zip(idx, props["prominences"], widths):
+        centre = g[p] + _parabolic_offset(smooth, p) * step
+        density = scale.density(centre)
+        half_width = 0.5 * width * step * abs(scale.alpha)
+        if abs(centre - scale.v0) < max(4 * step, 0.5 * width * step):
+            continue   # the neutrality peak itself
+        entry = {"gate": float(centre), "density": float(density), "band_filling": None,
+                 "kind": "not at a band filling", "agrees_with_satellites": None,
+                 "prominence_decades": float(prom), "half_width_density": float(half_width),
+                 "field": float(absb[low].mean())}
+        if n0 is not None:
+            x = density / n0
+            s = round(x)
+            tol = max(half_width, 3 * abs(scale.alpha) * step, 3 * abs(s) * (n0_sigma or 0.0))
+            if s != 0 and abs(density - s * n0) <= tol:
+                entry["band_filling"] = int(s)
+                entry["kind"] = ("full-filling insulator" if abs(s) == flavours else
+                                 "correlated (partial filling)" if abs(s) < flavours else
+                                 "beyond full filling")
+                seen_at = family_density.get(s)
+                # None: no satellite family starts at this filling to compare with
+                entry["agrees_with_satellites"] = (
+                    None if not seen_at else bool(abs(density - np.mean(seen_at)) <= tol))
+        peaks.append(entry)
+    if n0 is None and len(peaks) >= 2:
+        dens = np.array([p["density"] for p in peaks])
+        pairs = [(a, b) for a in dens[dens > 0] for b in dens[dens < 0]
+                 if abs(a + b) < 0.1 * abs(a)]
+        if pairs:
+            notes.append("zero-field peaks sit symmetrically about neutrality at "
+                         f"|n| = {abs(pairs[0][0]) * 1e-4:.3e} cm^-2, as at superlattice band "
+                         "fillings, but no satellite lines were found")
+    if n0 is not None:
+        beyond = [p for p in peaks if abs(p["density"]) > 1.1 * flavours * n0
+                  and p["band_filling"] is not None]
+        if beyond:
+            notes.append("a zero-field peak lies beyond the outermost satellite family: "
+                         "full filling may be higher than assumed")
+    return peaks
+
+
+def _parabolic_offset(y, i):
+    """Sub-sample offset of the extremum of y at index i from a parabola through 3 points."""
+    if i <= 0 or i >= y.size - 1:
+        return 0.0
+    den = y[i - 1] - 2 * y[i] + y[i + 1]
+    return float(0.5 * (y[i - 1] - y[i + 1]) / den) if den != 0 else 0.0
+
+
+# --- horizontal features ---------------------------------------------------------------
+
+def _horizontal_features(gate, fields, rxx, scale, n0, n0_sigma, notes, max_denominator=12):
+    """Minima at one field across a wide range of gate voltage.
+
+    Brown-Zak-type features sit at rational flux per moire cell,
+    B (1/n0) = (p/q) h/e, and so are periodic in 1/B; they are not fan lines.
+    Each column is detrended along the field, each field row is searched for
+    long runs of columns with a local minimum along the field at that row.
+    """
+    order_b = np.argsort(fields)
+    order_g = np.argsort(gate)
+    b = fields[order_b]
+    z = _log_resistance(rxx[order_b][:, order_g])
+    if b.size < 7:
+        return []
+    column_median = np.nanmedian(z, axis=0)
+    z = np.where(np.isfinite(z), z, column_median[None, :])
+    z = np.where(np.isfinite(z), z, np.nanmedian(z) if np.isfinite(z).any() else 0.0)
+    resid = z - ndimage.gaussian_filter1d(z, 3.0, axis=0, mode="nearest")
+    noise = 1.4826 * np.median(np.abs(resid - np.median(resid, axis=0)), axis=0) + 1e-12
+    minimum = np.zeros_like(resid, bool)
+    minimum[1:-1] = ((resid[1:-1] < resid[:-2]) & (resid[1:-1] <= resid[2:])
+                     & (resid[1:-1] < -2.0 * noise))
+    min_run = max(10, int(0.2 * gate.size))
+    step = scale.gate_step
+    found = []
+    for i in range(1, b.size - 1):
+        row = ndimage.binary_closing(minimum[i], structure=np.ones(3))
+        labels, count = ndimage.label(row)
+        for lab in range(1, count + 1):
+            cols = np.flatnonzero(labels == lab)
+            if cols.size < min_run:
+                continue
+            depth = float(-np.mean(resid[i, cols]))
+            found.append((i, cols[0], cols[-1], depth))
+    # the same feature may light up two neighbouring rows: keep the deeper one
+    found.sort(key=lambda f: -f[3])
+    kept = []
+    for f in found:
+        if not any(abs(f[0] - k[0]) <= 1 and f[1] <= k[2] and k[1] <= f[2] for k in kept):
+            kept.append(f)
+    # runs on one row interrupted by, e.g., the neutrality peak are one feature
+    kept.sort(key=lambda f: (f[0], f[1]))
+    merged = []
+    for f in kept:
+        if merged and abs(f[0] - merged[-1][0]) <= 1:
+            i, lo, hi, depth, pieces = merged[-1]
+            merged[-1] = (i, min(lo, f[1]), max(hi, f[2]), max(depth, f[3]),
+                          pieces + [(f[1], f[2])])
+        else:
+            merged.append((f[0], f[1], f[2], f[3], [(f[1], f[2])]))
+    kept = merged
+    g = gate[order_g]
+    features = []
+    for i, lo, hi, depth, pieces in kept:
+        prof = np.mean(resid[i - 1:i + 2, lo:hi + 1], axis=1)
+        di = _parabolic_offset(prof, 1)
+        bf = float(b[i] + di * (b[min(i + 1, b.size - 1)] - b[i - 1]) / 2)
+        features.append({"field": bf, "gate_min": float(g[lo]), "gate_max": float(g[hi]),
+                         "density_min": float(scale.density(g[lo])),
+                         "density_max": float(scale.density(g[hi])),
+                         "gate_ranges": [[float(g[p]), float(g[q])] for p, q in pieces],
+                         "depth_decades": depth, "flux_per_cell": None,
+                         "implied_cell_area": None,
+                         "field_step": float(np.median(np.diff(b)))})
+    if not features:
+        return []
+    if n0 is not None:
+        for f in features:
+            flux = abs(f["field"]) / (_PHI0 * n0)
+            tol = (f["field_step"] / (_PHI0 * n0) + flux * (n0_sigma or 0.0) / n0) * 1.5
+            frac = min(_flux_fractions(max_denominator), key=lambda x: abs(flux - float(x)))
+            if abs(flux - float(frac)) <= tol:
+                f["flux_per_cell"] = f"{frac.numerator}/{frac.denominator}"
+                f["implied_cell_area"] = float(frac) * _PHI0 / abs(f["field"])
+    else:
+        period = _inverse_field_period(features)
+        if period is not None:
+            for f in features:
+                q = round(1.0 / (abs(f["field"]) * period))
+                f["flux_per_cell"] = f"1/{q}"
+                f["implied_cell_area"] = _PHI0 / (q * abs(f["field"]))
+            notes.append(f"{len(features)} horizontal features periodic in 1/B imply a moire "
+                         f"cell of {_PHI0 * period * 1e18:.1f} nm^2 (not fan lines)")
+    unexplained = [f for f in features if f["flux_per_cell"] is None]
+    if unexplained:
+        notes.append(f"{len(unexplained)} horizontal feature(s) at no simple flux per cell "
+                     "(could be an instrument artefact of a single sweep)")
+    return features
+
+
+def _flux_fractions(max_denominator):
+    """Flux per cell where Brown-Zak features are expected: 1/q, and p/q for q <= 4."""
+    fracs = {Fraction(1, q) for q in range(1, max_denominator + 1)}
+    fracs |= {Fraction(p, q) for q in range(2, 5) for p in range(1, 2 * q)}
+    return sorted(fracs)
+
+
+def _inverse_field_period(features):
+    """Largest period P in 1/B such that every feature sits at 1/B = q P (q integer)."""
+    if len(features) < 2:
+        return None
+    inv = np.array([1.0 / abs(f["field"]) for f in features])
+    tol = np.array([f["field_step"] / f["field"] ** 2 for f in features])
+    base = inv.min()
+    for q in range(1, 13):
+        period = base / q
+        ratio = inv / period
+        if np.all(np.abs(ratio - np.round(ratio)) * period <= 1.5 * tol):
+            return float(period)
+    return None

@@ -1,0 +1,238 @@
+"""Superlattice analysis: moire geometry against outside values, and exact-answer moire fans.
+
+The hand-built maps below put Lorentzian dips of R_xx along n = t eB/h + s n0
+(the Diophantine relation of Landau levels in a periodic potential) over a
+smooth background, so the right answer (n0, every (t, s)) is known exactly.
+"""
+
+import json
+
+import numpy as np
+import pytest
+import xarray as xr
+from scipy import signal
+
+from fanmap import physics as ph
+from fanmap.errors import InputError, NoFanError
+from fanmap.results import FanResult, State, to_jsonable
+from fanmap.superlattice import analyse_superlattice, superlattice_geometry
+
+ALPHA = 6.0e16      # m^-2 V^-1, a ~30 nm hBN gate (invented device)
+V0 = 0.02           # V
+MAIN = (-12, -8, -4, 4, 8, 12)
+FULL = ((2, 4), (4, 4), (-2, 4), (-4, 4), (2, -4), (4, -4), (-2, -4), (-4, -4))
+HALF = ((2, 2), (-2, 2), (2, -2), (-2, -2))
+
+
+def cell_density(angle_deg):
+    return ph.moire_cell_density(ph.moire_wavelength(np.radians(angle_deg)))
+
+
+def moire_map(angle_deg=1.1, satellites=FULL, *, superlattice=True, zero_field_peaks=True,
+              horizontal=(), seed=0, noise=0.01, rows=81, columns=281, max_field=8.0):
+    """A fan map with main-fan lines, satellite lines and optional horizontal dips."""
+    rng = np.random.default_rng(seed)
+    n0 = cell_density(angle_deg)
+    half_span = 1.25 * 4 * n0 / ALPHA
+    gate = np.linspace(-half_span, half_span, columns)
+    field = np.linspace(0.0, max_field, rows)
+    n = ALPHA * (gate - V0)[None, :]
+    flux = field[:, None] / ph.FLUX_QUANTUM_SINGLE_ELECTRON
+    width = 1.5 * ALPHA * (gate[1] - gate[0])
+    r = 1e3 + 9e3 / (1 + (n / (0.03 * ALPHA)) ** 2) + 0 * flux
+    if superlattice and zero_field_peaks:
+        for s, height in ((4, 5e3), (-4, 5e3), (2, 1.5e3), (-2, 1.5e3)):
+            r = r + height / (1 + ((n - s * n0) / (0.015 * ALPHA)) ** 2) * np.exp(-flux * 0 -
+                                                                              field[:, None] / 3)
+    onset = 1.0 / (1 + np.exp(-(field[:, None] - 1.0) / 0.15))
+    dip = sum(0.8 * onset / (1 + ((n - nu * flux) / width) ** 2) for nu in MAIN)
+    if superlattice:
+        for t, s in satellites:
+            dip = dip + 0.6 * onset / (1 + ((n - t * flux - s * n0) / width) ** 2)
+    for b in horizontal:
+        dip = dip + 0.4 / (1 + ((field[:, None] - b) / 0.04) ** 2) + 0 * n
+    r = r * np.exp(-np.clip(dip, 0, 3)) * (1 + noise * rng.standard_normal(r.shape))
+    return xr.Dataset(
+        {"rxx": (("field", "gate"), r, {"units": "ohm", "long_name": "longitudinal resistance"})},
+        coords={"field": ("field", field, {"units": "T", "long_name": "magnetic field"}),
+                "gate": ("gate", gate, {"units": "V", "long_name": "gate voltage"})},
+        attrs={"map_kind": "fan"})
+
+
+def hand_fit(fan_map):
+    """A main-fan result with the exact alpha and V0 and per-row minima as ridge points."""
+    logr = np.log10(fan_map.rxx.values)
+    gate = fan_map.gate.values
+    step = gate[1] - gate[0]
+    fields, gates, weights = [], [], []
+    for i, b in enumerate(fan_map.field.values):
+        if b < 0.3:
+            continue
+        idx, props = signal.find_peaks(-logr[i], prominence=0.05)
+        for p, prom in zip(idx, props["prominences"]):
+            den = logr[i, p - 1] - 2 * logr[i, p] + logr[i, p + 1] if 0 < p < gate.size - 1 else 0
+            offset = 0.5 * (logr[i, p - 1] - logr[i, p + 1]) / den if den else 0.0
+            fields.append(b)
+            gates.append(gate[p] + offset * step)
+            weights.append(prom)
+    fields, gates = np.array(fields), np.array(gates)
+    per_filling = 1 / (ALPHA * ph.FLUX_QUANTUM_SINGLE_ELECTRON)
+    states = [State(filling=str(nu), kind="integer", slope=nu * per_filling, intercept=V0,
+                    points=0, field_min=1.0, field_max=float(fan_map.field.max()))
+              for nu in MAIN]
+    state = np.full(fields.size, -1)
+    for i, nu in enumerate(MAIN):
+        state[np.abs(gates - (V0 + nu * per_filling * fields)) < step] = i
+    return FanResult(
+        density_per_volt=ALPHA, density_per_volt_stderr=1e-3 * ALPHA,
+        capacitance_per_area=ph.capacitance_from_lever_arm(ALPHA), zero_density_voltage=V0,
+        zero_density_voltage_stderr=1e-4, density_offset=-ALPHA * V0, degeneracy=4,
+        berry_phase=2, scale_from="material", states=states, material="moire-graphene",
+        ridge_points={"field": fields, "gate": gates, "state": state,
+                      "weight": np.array(weights)})
+
+
+# --- geometry against outside values --------------------------------------------------
+
+def test_magic_angle_full_filling_density():
+    # Cao et al., Nature 556, 43 (2018), from memory: theta ~ 1.05-1.1 deg gives
+    # n_s ~ 2.7e12 cm^-2 (shared check-values table); tolerance wide for "from memory".
+    g = superlattice_geometry(cell_density(1.1))
+    assert g["density"] * 1e-4 == pytest.approx(2.7e12, rel=0.06)
+    n0 = 2.7e16 / 4
+    back = superlattice_geometry(n0)
+    assert 1.03 < back["twist_angle_deg"] < 1.12
+
+
+@pytest.mark.parametrize("angle", [0.5, 0.9, 1.1, 1.5, 3.0])
+def test_geometry_formulas_agree(angle):
+    # Standard geometry: lambda = a / (2 sin(theta/2)) ~ a / theta; triangular moire cell of
+    # area (sqrt(3)/2) lambda^2 holds one carrier at n0 (common practice, a = 0.246 nm).
+    wavelength = ph.moire_wavelength(np.radians(angle))
+    assert ph.moire_wavelength(np.radians(angle), small_angle=True) == pytest.approx(
+        wavelength, rel=np.radians(angle) ** 2 / 20)
+    assert 1 / ph.moire_cell_density(wavelength) == pytest.approx(np.sqrt(3) / 2 * wavelength**2)
+    g = superlattice_geometry(ph.moire_cell_density(wavelength), flavours=4)
+    assert g["twist_angle_deg"] == pytest.approx(angle, rel=1e-9)
+    assert g["wavelength"] == pytest.approx(wavelength, rel=1e-12)
+    assert g["density"] == pytest.approx(ph.moire_full_filling_density(np.radians(angle)))
+    # small-angle and exact formulas agree to far better than 0.01 deg below 3 deg
+    assert abs(g["twist_angle_small_angle_deg"] - angle) < 1e-3
+
+
+def test_geometry_uncertainty_propagation():
+    # theta ~ a sqrt(sqrt(3) n0 / 2), so sigma_theta / theta = sigma_n0 / (2 n0) to first order.
+    n0 = cell_density(1.2)
+    g = superlattice_geometry(n0, 0.02 * n0)
+    assert g["twist_angle_deg_stderr"] == pytest.approx(0.01 * 1.2, rel=1e-3)
+    assert g["wavelength_stderr"] == pytest.approx(0.01 * g["wavelength"], rel=1e-9)
+    assert g["density_stderr"] == pytest.approx(4 * 0.02 * n0)
+
+
+def test_geometry_without_lattice_constant_has_no_angle():
+    g = superlattice_geometry(cell_density(1.0), flavours=2, lattice_constant=None)
+    assert g["twist_angle_deg"] is None and g["density"] == pytest.approx(2 * cell_density(1.0))
+    with pytest.raises(InputError):
+        superlattice_geometry(-1.0)
+
+
+# --- exact-answer moire fans ----------------------------------------------------------
+
+@pytest.mark.parametrize("angle", [0.9, 1.1, 1.5])
+@pytest.mark.parametrize("satellites", [FULL, FULL + HALF], ids=["s4", "s2s4"])
+def test_hand_built_moire_fan(angle, satellites):
+    fan_map = moire_map(angle, satellites)
+    finding = analyse_superlattice(fan_map, hand_fit(fan_map), material="moire-graphene")
+    assert finding.seen
+    sl = finding.superlattice
+    assert abs(sl["twist_angle_deg"] - angle) < 0.01
+    assert sl["density"] == pytest.approx(4 * cell_density(angle), rel=0.01)
+    assert sl["cell_density_stderr"] > 0 and sl["twist_angle_deg_stderr"] > 0
+    named = sorted((int(s.filling), s.band_filling) for s in finding.satellites)
+    assert named == sorted(satellites)
+    assert all(s.kind == "satellite" for s in finding.satellites)
+    assert sl["band_fillings"] == sorted({s for _, s in satellites})
+
+
+def test_auto_reports_no_superlattice_on_a_plain_fan():
+    fan_map = moire_map(superlattice=False)
+    finding = analyse_superlattice(fan_map, hand_fit(fan_map), material="auto")
+    assert not finding.seen and finding.superlattice is None and finding.satellites == []
+    assert finding.notes[0] == "no superlattice seen"
+
+
+def test_single_offset_line_is_not_a_superlattice():
+    fan_map = moire_map(satellites=((2, 4),), zero_field_peaks=False)
+    finding = analyse_superlattice(fan_map, hand_fit(fan_map), material="auto")
+    assert not finding.seen and finding.satellites == []
+    assert len(finding.offset_lines) == 1
+
+
+def test_zero_field_peaks_at_band_fillings():
+    fan_map = moire_map(1.1, FULL + HALF)
+    finding = analyse_superlattice(fan_map, hand_fit(fan_map))
+    kinds = {p["band_filling"]: p for p in finding.zero_field_peaks}
+    assert set(kinds) == {-4, -2, 2, 4}
+    assert kinds[4]["kind"] == kinds[-4]["kind"] == "full-filling insulator"
+    assert kinds[2]["kind"] == kinds[-2]["kind"] == "correlated (partial filling)"
+    assert all(p["agrees_with_satellites"] for p in finding.zero_field_peaks)
+    assert kinds[4]["density"] == pytest.approx(4 * cell_density(1.1), rel=0.02)
+    assert finding.superlattice["zero_field_peaks_agree"] is True
+
+
+def test_horizontal_features_give_the_cell_area_and_stay_out_of_the_fan():
+    n0 = cell_density(1.1)
+    fields = [ph.FLUX_QUANTUM_SINGLE_ELECTRON * n0 / q for q in (5, 6)]   # flux h/(q e) per cell
+    fan_map = moire_map(1.1, horizontal=fields)
+    finding = analyse_superlattice(fan_map, hand_fit(fan_map))
+    assert {f["flux_per_cell"] for f in finding.horizontal_features} == {"1/5", "1/6"}
+    for f in finding.horizontal_features:
+        assert f["implied_cell_area"] == pytest.approx(1 / n0, rel=0.02)
+    assert finding.superlattice["cell_area_from_horizontal_features"] == pytest.approx(
+        1 / n0, rel=0.02)
+    assert sorted((int(s.filling), s.band_filling) for s in finding.satellites) == sorted(FULL)
+
+
+def test_horizontal_features_alone_give_a_period_in_inverse_field():
+    n0 = cell_density(1.1)
+    fields = [ph.FLUX_QUANTUM_SINGLE_ELECTRON * n0 / q for q in (4, 5, 6)]
+    fan_map = moire_map(superlattice=False, horizontal=fields)
+    finding = analyse_superlattice(fan_map, hand_fit(fan_map))
+    assert not finding.seen
+    assert [f["flux_per_cell"] for f in finding.horizontal_features] == ["1/6", "1/5", "1/4"]
+    for f in finding.horizontal_features:
+        assert f["implied_cell_area"] == pytest.approx(1 / n0, rel=0.03)
+
+
+def test_other_flavour_count_and_material():
+    fan_map = moire_map(1.1)
+    finding = analyse_superlattice(fan_map, hand_fit(fan_map), flavours=4,
+                                   material="graphene-bilayer")
+    assert finding.seen and finding.superlattice["twist_angle_deg"] is None
+    two = analyse_superlattice(fan_map, hand_fit(fan_map), flavours=2, material="auto")
+    # with two flavours the outermost family is full filling s = +-2, so n0 doubles
+    assert two.superlattice["cell_density"] == pytest.approx(2 * cell_density(1.1), rel=0.01)
+    assert {s.band_filling for s in two.satellites} == {-2, 2}
+
+
+def test_result_is_json_ready():
+    fan_map = moire_map(1.1)
+    finding = analyse_superlattice(fan_map, hand_fit(fan_map))
+    text = json.dumps(to_jsonable(finding), allow_nan=False)
+    assert '"kind": "satellite"' in text
+
+
+def test_bad_input_gets_clear_errors():
+    fan_map = moire_map(1.1, rows=12, columns=41)
+    result = hand_fit(fan_map)
+    result.ridge_points = None
+    with pytest.raises(InputError, match="ridge points"):
+        analyse_superlattice(fan_map, result)
+    with pytest.raises(InputError, match="rxx"):
+        analyse_superlattice(fan_map.drop_vars("rxx").assign(x=fan_map.rxx), hand_fit(fan_map))
+    broken = hand_fit(fan_map)
+    broken.density_per_volt = float("nan")
+    with pytest.raises(NoFanError):
+        analyse_superlattice(fan_map, broken)
+    with pytest.raises(InputError, match="flavours"):
+        analyse_superlattice(fan_map, hand_fit(fan_map), flavours=0)
