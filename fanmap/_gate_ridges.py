@@ -1,0 +1,305 @@
+"""Ridges of dual-gate maps: families of constant-density lines and their points.
+
+Every feature of a dual-gate map that depends on the density alone lies on a
+line V_t + q V_b = u with q = C_b / C_t: the charge-neutrality ridge at zero
+field, the quantum Hall minima at fixed field.  Everything here works in that
+coordinate ``u`` (V, "equivalent top-gate voltage"):
+
+* :func:`best_ratio` finds q as the orientation that makes the map most
+  nearly a function of u alone (largest share of variance explained by u);
+* :func:`profile` is the map averaged along such lines;
+* :func:`trace_extrema` fits each line, trace by trace, with a Lorentzian on a
+  linear background (vectorised Levenberg-Marquardt), giving sub-pixel points
+  with uncertainties;
+* :func:`symmetry_centre` finds the centre of a curve that is even about an
+  unknown point (the resistance at neutrality versus displacement field).
+"""
+
+import numpy as np
+from scipy import interpolate, signal
+
+__all__ = ["log_signal", "best_ratio", "profile", "rotated_grid", "trace_extrema",
+           "symmetry_centre", "sample_along_line"]
+
+
+def log_signal(values):
+    """Natural log of |R| with a floor at 1 % of the median (QH minima reach zero)."""
+    values = np.abs(np.asarray(values, dtype=float))
+    floor = 0.01 * np.nanmedian(values)
+    return np.log(values + max(floor, np.finfo(float).tiny))
+
+
+def _bin_index(z, top, bottom, q):
+    step = max(abs(top[1] - top[0]), q * abs(bottom[1] - bottom[0]))
+    u = top[None, :] + q * bottom[:, None]
+    u0 = np.nanmin(u)
+    return ((u - u0) / step).astype(np.int64), u0, step
+
+
+def _explained_share(z, top, bottom, q, finite):
+    index, _, _ = _bin_index(z, top, bottom, q)
+    index = index[finite]
+    values = z[finite]
+    counts = np.bincount(index)
+    sums = np.bincount(index, values)
+    used = counts > 0
+    means = sums[used] / counts[used]
+    total = values.mean()
+    between = np.sum(counts[used] * (means - total) ** 2)
+    spread = np.sum((values - total) ** 2)
+    n, k = values.size, used.sum()
+    share = between / spread
+    # Adjusted for the number of bins, so that finer binning earns no credit.
+    return 1.0 - (1.0 - share) * (n - 1) / max(n - k, 1)
+
+
+def best_ratio(z, top, bottom, low=1e-2, high=1e2):
+    """Ratio q = C_b/C_t whose lines V_t + q V_b = const best explain the map ``z``.
+
+    ``z`` has shape (len(bottom), len(top)).  Returns ``(q, share)``, share being
+    the adjusted fraction of the variance of ``z`` explained by u = V_t + q V_b.
+    """
+    finite = np.isfinite(z)
+    coarse = np.geomspace(low, high, 721)
+    shares = np.array([_explained_share(z, top, bottom, q, finite) for q in coarse])
+    best = int(np.argmax(shares))
+    lo, hi = coarse[max(best - 3, 0)], coarse[min(best + 3, coarse.size - 1)]
+    fine = np.geomspace(lo, hi, 61)
+    fine_shares = np.array([_explained_share(z, top, bottom, q, finite) for q in fine])
+    best = int(np.argmax(fine_shares))
+    return float(fine[best]), float(fine_shares[best])
+
+
+def profile(z, top, bottom, q):
+    """Map ``z`` averaged along the lines V_t + q V_b = u: returns ``(u, mean, count)``."""
+    finite = np.isfinite(z)
+    index, u0, step = _bin_index(z, top, bottom, q)
+    counts = np.bincount(index[finite])
+    sums = np.bincount(index[finite], z[finite])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        means = sums / counts
+    centres = u0 + (np.arange(counts.size) + 0.5) * step
+    keep = counts >= max(3, 0.2 * np.median(counts[counts > 0]))
+    return centres[keep], means[keep], counts[keep]
+
+
+def rotated_grid(values, top, bottom, q):
+    """Resample a map onto u = V_t + q V_b (along traces) and w = V_t - q V_b (across).
+
+    With q = C_b/C_t, u is proportional to the density and w to the
+    displacement field, so a trace at fixed w crosses every constant-density
+    line at right angles and at constant D: features whose strength depends on
+    D (the bilayer gap) stay symmetric within one trace.  Returns ``(u, w,
+    resampled)`` with ``resampled`` of shape (len(w), len(u)), NaN outside the map.
+    """
+    fine = min(top[1] - top[0], q * (bottom[1] - bottom[0]))
+    coarse = max(top[1] - top[0], q * (bottom[1] - bottom[0]))
+    corners_t, corners_b = np.meshgrid(top[[0, -1]], bottom[[0, -1]])
+    u_c, w_c = corners_t + q * corners_b, corners_t - q * corners_b
+    u = np.arange(u_c.min(), u_c.max() + fine / 2, fine)
+    w = np.arange(w_c.min() + coarse / 2, w_c.max(), coarse)
+    uu, ww = np.meshgrid(u, w)
+    interp = interpolate.RegularGridInterpolator((bottom, top), values, bounds_error=False,
+                                                 fill_value=np.nan)
+    resampled = interp(np.column_stack([((uu - ww) / (2 * q)).ravel(), ((uu + ww) / 2).ravel()]))
+    return u, w, resampled.reshape(uu.shape)
+
+
+def _lorentz_batch(t, y, weights, x0, width, sign, iterations=30):
+    """Fit y = b0 + b1 t + sign*A/(1 + ((t - x0)/w)^2) to every row of (t, y) at once.
+
+    Returns ``(x0, x0_stderr, amplitude, width, ok)``; rows are independent.
+    """
+    n = y.shape[0]
+    edge = np.where(weights > 0, y, np.nan)
+    base = np.nanmedian(np.concatenate([edge[:, :2], edge[:, -2:]], axis=1), axis=1)
+    base = np.where(np.isfinite(base), base, np.nanmedian(edge, axis=1))
+    peak = np.nanmax(sign * edge, axis=1) * sign
+    params = np.column_stack([x0, np.log(width), np.maximum(sign * (peak - base), 1e-12),
+                              base, np.zeros(n)])
+
+    def model(p):
+        s = (t - p[:, 0:1]) / np.exp(p[:, 1:2])
+        lor = 1.0 / (1.0 + s * s)
+        return p[:, 3:4] + p[:, 4:5] * t + sign * p[:, 2:3] * lor, s, lor
+
+    def jacobian(p, s, lor):
+        w = np.exp(p[:, 1:2])
+        amp = sign * p[:, 2:3]
+        return np.stack([amp * 2 * s * lor**2 / w, amp * 2 * s * s * lor**2, sign * lor,
+                         np.ones_like(t), t], axis=-1)
+
+    fit, s, lor = model(params)
+    cost = np.sum(weights * (y - fit) ** 2, axis=1)
+    damping = np.full(n, 1e-2)
+    for _ in range(iterations):
+        jac = jacobian(params, s, lor) * np.sqrt(weights)[..., None]
+        resid = (y - fit) * np.sqrt(weights)
+        jtj = np.einsum("nmi,nmj->nij", jac, jac)
+        grad = np.einsum("nmi,nm->ni", jac, resid)
+        diag = np.einsum("nii->ni", jtj)
+        system = jtj + damping[:, None, None] * (diag[:, :, None] * np.eye(5) + 1e-12 * np.eye(5))
+        try:
+            step = np.linalg.solve(system, grad[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            break
+        trial = params + step
+        trial[:, 1] = np.clip(trial[:, 1], np.log(0.2), np.log(10.0 * t.shape[1]))
+        trial_fit, trial_s, trial_lor = model(trial)
+        trial_cost = np.sum(weights * (y - trial_fit) ** 2, axis=1)
+        better = np.isfinite(trial_cost) & (trial_cost < cost)
+        params[better] = trial[better]
+        fit[better], s[better], lor[better] = trial_fit[better], trial_s[better], trial_lor[better]
+        cost[better] = trial_cost[better]
+        damping = np.where(better, damping / 3.0, damping * 4.0)
+    jac = jacobian(params, s, lor) * np.sqrt(weights)[..., None]
+    jtj = np.einsum("nmi,nmj->nij", jac, jac)
+    dof = np.maximum(weights.sum(axis=1) - 5, 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        try:
+            cov = np.linalg.inv(jtj + 1e-30 * np.eye(5))
+            var = cov[:, 0, 0] * cost / dof
+        except np.linalg.LinAlgError:
+            var = np.full(n, np.nan)
+    stderr = np.sqrt(np.abs(var))
+    ok = (np.isfinite(params).all(axis=1) & np.isfinite(stderr) & (params[:, 2] > 0)
+          & (params[:, 0] > t[:, 0]) & (params[:, 0] < t[:, -1]))
+    return params[:, 0], stderr, params[:, 2], np.exp(params[:, 1]), ok
+
+
+def trace_extrema(values, scan, other, q_scan, centres, half_window, sign, width,
+                  min_contrast=0.0):
+    """Sub-pixel extrema of every trace near each line of a family.
+
+    Parameters
+    ----------
+    values : ndarray, shape (len(other), len(scan))
+        Resistance, one trace per row (rows: the other gate).
+    scan, other : ndarray
+        Gate voltages along a trace and across traces (V), increasing.
+    q_scan : float
+        Lines are scan + q_scan * other = centre.
+    centres : sequence of float
+        Line positions (V, in the ``scan`` gate's units).
+    half_window : int
+        Half width of the fitted window, in pixels.
+    sign : {+1, -1}
+        +1 for a maximum (neutrality ridge), -1 for a minimum (QH state).
+    width : float
+        Starting half width of the feature, in pixels.
+    min_contrast : float
+        Smallest accepted amplitude, as a fraction of the local background.
+
+    Returns
+    -------
+    dict of arrays: ``line`` (index into centres), ``scan``, ``other``,
+    ``scan_stderr`` (V), ``amplitude``, ``peak`` (value at the extremum, ohm).
+    """
+    step = scan[1] - scan[0]
+    n_other, n_scan = values.shape
+    m = 2 * half_window + 1
+    out = {key: [] for key in ("line", "scan", "other", "scan_stderr", "amplitude", "peak")}
+    offsets = np.arange(-half_window, half_window + 1)
+    for line, centre in enumerate(centres):
+        expected = (centre - q_scan * other - scan[0]) / step
+        inside = (expected >= half_window) & (expected <= n_scan - 1 - half_window)
+        rows = np.flatnonzero(inside)
+        if rows.size == 0:
+            continue
+        # Discrete extremum within the window around the expected position.
+        index = np.rint(expected[rows]).astype(int)[:, None] + offsets[None, :]
+        window = values[rows[:, None], index]
+        finite = np.isfinite(window)
+        if not finite.any():
+            continue
+        filled = np.where(finite, window, -np.inf if sign > 0 else np.inf)
+        best = np.argmax(filled, axis=1) if sign > 0 else np.argmin(filled, axis=1)
+        centre_index = np.clip(index[:, 0] + best, half_window, n_scan - 1 - half_window)
+        index = centre_index[:, None] + offsets[None, :]
+        window = values[rows[:, None], index]
+        weights = np.isfinite(window).astype(float)
+        good_rows = weights.sum(axis=1) >= max(7, 0.6 * m)
+        if not good_rows.any():
+            continue
+        rows, index, window, weights = rows[good_rows], index[good_rows], window[good_rows], weights[good_rows]
+        y = np.where(weights > 0, window, 0.0)
+        t = np.broadcast_to(offsets.astype(float), y.shape).copy()
+        x0, x0_err, amp, _, ok = _lorentz_batch(t, y, weights, np.zeros(len(rows)),
+                                                np.full(len(rows), max(width, 0.7)), sign)
+        base = np.nanmedian(np.abs(window), axis=1)
+        ok &= amp > min_contrast * np.maximum(base, 1e-300)
+        ok &= x0_err < 0.25 * half_window
+        peak_index = np.clip(np.rint(x0).astype(int), -half_window, half_window) + half_window
+        peak = window[np.arange(len(rows)), peak_index]
+        position = scan[0] + (index[:, half_window] + x0) * step
+        out["line"].append(np.full(ok.sum(), line))
+        out["scan"].append(position[ok])
+        out["other"].append(other[rows][ok])
+        out["scan_stderr"].append(np.abs(x0_err[ok] * step))
+        out["amplitude"].append(amp[ok])
+        out["peak"].append(peak[ok])
+    return {key: (np.concatenate(v) if v else np.empty(0)) for key, v in out.items()}
+
+
+def sample_along_line(values, top, bottom, top_of_bottom, bottoms):
+    """Values of the map (shape (len(bottom), len(top))) at (top_of_bottom(V_b), V_b)."""
+    interp = interpolate.RegularGridInterpolator((bottom, top), values, bounds_error=False,
+                                                 fill_value=np.nan)
+    return interp(np.column_stack([bottoms, top_of_bottom(bottoms)]))
+
+
+def symmetry_centre(x, y, min_overlap=0.3):
+    """Point c about which the curve y(x) is most nearly even, with its standard error.
+
+    Searches the inner part of the range so that at least ``min_overlap`` of the
+    range lies on both sides.  Returns ``(c, stderr, contrast, at_edge)``:
+    ``contrast`` is the spread of y explained by its even part relative to the
+    noise, ``at_edge`` is True when the best centre sits on the search boundary
+    (no centre found: a flat or monotonic curve).
+    """
+    x = np.asarray(x, float)
+    y = np.asarray(y, float)
+    keep = np.isfinite(x) & np.isfinite(y)
+    x, y = x[keep], y[keep]
+    order = np.argsort(x)
+    x, y = x[order], y[order]
+    if x.size < 9:
+        return np.nan, np.nan, 0.0, True
+    span = x[-1] - x[0]
+    spacing = span / (x.size - 1)
+    noise = np.median(np.abs(np.diff(y, 2))) / 0.6745 / np.sqrt(6) + 1e-300
+    f = interpolate.interp1d(x, y, bounds_error=False, fill_value=np.nan)
+    half_min = 0.5 * min_overlap * span
+
+    def mismatch(c):
+        reach = min(c - x[0], x[-1] - c)
+        if reach < half_min:
+            return np.inf, 0
+        d = np.arange(spacing, reach, spacing)
+        diff = f(c + d) - f(c - d)
+        diff = diff[np.isfinite(diff)]
+        return np.mean(diff * diff) if diff.size else np.inf, diff.size
+
+    candidates = np.linspace(x[0] + half_min, x[-1] - half_min, 4 * x.size)
+    costs = np.array([mismatch(c)[0] for c in candidates])
+    best = int(np.argmin(costs))
+    # Refine on a fine grid around the coarse best.
+    fine = np.linspace(candidates[max(best - 2, 0)], candidates[min(best + 2, candidates.size - 1)], 81)
+    fine_costs = np.array([mismatch(c)[0] for c in fine])
+    fbest = int(np.argmin(fine_costs))
+    centre = float(fine[fbest])
+    at_edge = best in (0, candidates.size - 1)
+    cost, count = mismatch(centre)
+    # Gauss-Newton standard error of c: residuals r(d) = y(c+d) - y(c-d).
+    reach = min(centre - x[0], x[-1] - centre)
+    d = np.arange(spacing, reach, spacing)
+    slope = np.gradient(signal.savgol_filter(y, min(11, x.size - (1 - x.size % 2)), 2), x)
+    fs = interpolate.interp1d(x, slope, bounds_error=False, fill_value=np.nan)
+    jac = fs(centre + d) - fs(centre - d)
+    jac = jac[np.isfinite(jac)]
+    dof = max(count - 1, 1)
+    stderr = np.sqrt(max(cost, 2 * noise**2) / max(np.sum(jac * jac), 1e-300) * count / dof)
+    even_part = f(centre + d) + f(centre - d)
+    even_part = even_part[np.isfinite(even_part)]
+    contrast = float(np.std(even_part / 2) / noise) if even_part.size else 0.0
+    return centre, float(stderr), contrast, bool(at_edge)
