@@ -374,7 +374,8 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope):
         peaks, _ = signal.find_peaks(window, height=height, distance=2)
         centres = 0.5 * (edges[:-1] + edges[1:])
         for p in peaks:
-            candidates.append((window[p], t, centres[p]))
+            near = np.abs(u - centres[p]) <= 1.5 * step   # the points of the 3-bin window
+            candidates.append((window[p], t, float(np.median(u[near]))))
     candidates.sort(key=lambda c: -c[0])
 
     claimed = ~free
@@ -406,9 +407,10 @@ def _grow_line(b, v, row, weight, claimed, t, u0, k, tol):
     """Collect the points of one line (one per field row) and fit it freely."""
     slope, intercept = t * k, u0
     members = None
-    for _ in range(3):
+    window = tol
+    for _ in range(4):
         resid = v - (intercept + slope * b)
-        near = np.flatnonzero(~claimed & (np.abs(resid) < tol))
+        near = np.flatnonzero(~claimed & (np.abs(resid) < window))
         if near.size < 3:
             return None
         # one point per field row: the closest one
@@ -423,6 +425,10 @@ def _grow_line(b, v, row, weight, claimed, t, u0, k, tol):
         if fit is None:
             return None
         intercept, slope = fit[0], fit[1]
+        # narrow the window to the scatter of the line so that a neighbouring line that
+        # converges on it at low field is not dragged in
+        spread = 1.4826 * np.median(np.abs(v[members] - (intercept + slope * b[members])))
+        window = min(tol, max(4 * spread, 0.25 * tol))
     a, s, cov, rms = fit
     return {"members": members, "points": int(members.size), "intercept": float(a),
             "slope": float(s), "intercept_stderr": float(np.sqrt(cov[0, 0])),
@@ -655,6 +661,9 @@ def _superlattice_dict(joint, flavours, lattice_constant, lattice, fan_result, n
         if diff > geometry["twist_angle_deg_stderr"]:
             notes.append(f"small-angle and exact twist formulas differ by {diff:.2g} deg, more "
                          "than the uncertainty: the exact value is reported")
+    if fan_result.scale_from == "ambiguous":
+        notes.append("the main fan's absolute scale is ambiguous: the superlattice densities and "
+                     "twist angle scale with the lever arm chosen and are only as sure as it is")
     if joint["joint"]:
         a0, sa = fan_result.density_per_volt, fan_result.density_per_volt_stderr
         sj = joint["density_per_volt_stderr"]
