@@ -68,6 +68,10 @@ def read_netcdf(path, *, lazy=None, engine=None):
             ds.close()
             problems.append(f"{name}: {type(exc).__name__}: {str(exc)[:120]}")
             continue
+        if not ds.variables:
+            ds.close()
+            problems.append(f"{name}: no variables")
+            continue
         notes = [f"engine {name}" + (", opened lazily (dask chunks)" if lazy else "")]
         return ds, notes
     raise InputError(f"{path}: not a readable netCDF/HDF5 file (corrupt or truncated?): "

@@ -122,6 +122,8 @@ def read_text(path):
         if delim is None and header is None and not rows:
             delim = _delimiter(line)
             decimal_comma = delim == ";" and "," in line
+        if delim == ";" and not rows and "," in line and not decimal_comma:
+            decimal_comma = _is_numeric_line(_split(line, delim), True)
         tokens = _split(line, delim)
         if header is None:
             if _is_numeric_line(tokens, decimal_comma):
@@ -153,6 +155,9 @@ def read_text(path):
         blocks.append(block)
         line_numbers.append(number)
 
+    if header is not None and not rows and bad_lines:
+        raise InputError(f"{path}: no line after the header reads as {len(header)} numbers "
+                         f"({_fmt_header(header)}); first bad line: {bad_lines[0]}")
     if header is None or not rows:
         raise InputError(f"{path}: no numeric data rows found; a long-format table needs a header "
                          "(e.g. 'B (T), Vg (V), Rxx (ohm)') and one row per measured point")
