@@ -10,6 +10,7 @@ except PackageNotFoundError:  # running from a source tree that was not installe
 from .errors import FanmapError, InputError, NoFanError, WorkflowError  # noqa: E402
 from .materials import MATERIAL_NAMES, get_material, main_sequence  # noqa: E402
 from .results import FanResult, GateResult, State  # noqa: E402
+from . import accessor  # noqa: E402,F401  (registers the dataset.fanmap accessor)
 
 __all__ = [
     "__version__", "FanmapError", "InputError", "NoFanError", "WorkflowError",

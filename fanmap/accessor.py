@@ -1,0 +1,28 @@
+"""The ``fanmap`` accessor on xarray datasets: ``fan_map.fanmap.fit()``.
+
+Importing :mod:`fanmap` registers it.  Other analyses add their own methods here.
+
+Examples
+--------
+>>> import xarray as xr, fanmap.accessor
+>>> hasattr(xr.Dataset().fanmap, "fit")
+True
+"""
+
+import xarray as xr
+
+__all__ = ["FanmapAccessor"]
+
+
+@xr.register_dataset_accessor("fanmap")
+class FanmapAccessor:
+    """Analyses of a labelled map, reached as ``dataset.fanmap``."""
+
+    def __init__(self, dataset):
+        self._ds = dataset
+
+    def fit(self, **options):
+        """Fit the Landau fan of this map; see :func:`fanmap.fanfit.fit_fan` for the options."""
+        from .fanfit import fit_fan
+
+        return fit_fan(self._ds, **options)

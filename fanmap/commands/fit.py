@@ -1,0 +1,104 @@
+"""``fanmap fit MAP``: calibrate the gate from a Landau fan and name its states."""
+
+from pathlib import Path
+
+import numpy as np
+
+from .._atomic import write_text_atomic
+from .._cautions import CAUTIONS
+from ..errors import InputError
+from ..fanfit import fit_fan
+from ..materials import MATERIAL_NAMES
+from ..results import dumps
+from ._options import add_reading_options, open_from_args
+
+_CM2 = 1e-4  # m^2 per cm^2
+
+
+def register(subparsers):
+    parser = subparsers.add_parser(
+        "fit", help="fit a Landau fan: lever arm, zero-density voltage, states",
+        description="Find the R_xx minima of a fan map, fit every line through the common "
+                    "origin and report the lever arm, the zero-density voltage, the degeneracy, "
+                    "the Berry phase and the name of every state, with uncertainties.")
+    parser.add_argument("map", metavar="MAP", help="fan map file (netCDF, text or npz)")
+    parser.add_argument("--material", choices=MATERIAL_NAMES, default="auto",
+                        help="material preset (fixes the degeneracy when the map cannot)")
+    parser.add_argument("--json", metavar="FILE", help="write the result as JSON")
+    parser.add_argument("--out", metavar="DIR", help="write figures, result.json and report.html")
+    parser.add_argument("--dielectric-thickness", metavar="NM", type=float,
+                        help="gate dielectric thickness in nm (prior on the lever arm)")
+    parser.add_argument("--permittivity", metavar="EPS", type=float,
+                        help="relative permittivity of the gate dielectric")
+    parser.add_argument("--bootstrap", metavar="N", type=int, default=200,
+                        help="bootstrap resamples over ridge traces (default 200, 0: none)")
+    add_reading_options(parser)
+    parser.set_defaults(run=run)
+    return parser
+
+
+def _dielectric(args):
+    if (args.dielectric_thickness is None) != (args.permittivity is None):
+        raise InputError("give both --dielectric-thickness and --permittivity, or neither")
+    if args.dielectric_thickness is None:
+        return None
+    if not (args.dielectric_thickness > 0 and args.permittivity > 0):
+        raise InputError("--dielectric-thickness (nm) and --permittivity must be positive")
+    return args.dielectric_thickness * 1e-9, args.permittivity
+
+
+def _value(value, err, unit, scale=1.0, digits=4):
+    if value is None or not np.isfinite(value):
+        return "undetermined"
+    text = f"{value * scale:.{digits}g}"
+    if err is not None and np.isfinite(err):
+        text += f" ± {err * scale:.2g}"
+    return f"{text} {unit}"
+
+
+def summary(result):
+    """Short human-readable summary of a :class:`~fanmap.results.FanResult`."""
+    lines = []
+    a, ae, ab = (result.density_per_volt, result.density_per_volt_stderr,
+                 result.density_per_volt_bootstrap_stderr)
+    lines.append(f"lever arm alpha      {_value(a, ae, 'cm^-2 V^-1', _CM2)}"
+                 f"   ({_value(a, ae, 'm^-2 V^-1')}; bootstrap ± {ab:.2g})")
+    lines.append(f"capacitance C/A      {_value(result.capacitance_per_area, result.capacitance_per_area_stderr, 'F m^-2')}")
+    lines.append(f"zero-density V0      {_value(result.zero_density_voltage, result.zero_density_voltage_stderr, 'V')}"
+                 f"   (bootstrap ± {result.zero_density_voltage_bootstrap_stderr:.2g})")
+    lines.append(f"degeneracy           {result.degeneracy if result.degeneracy is not None else 'undetermined'}")
+    berry = {0: "0", 1: "pi", 2: "2 pi"}.get(result.berry_phase, "undetermined")
+    lines.append(f"Berry phase          {berry}")
+    lines.append(f"scale from           {result.scale_from}")
+    for cand in result.scale_candidates:
+        lines.append(f"  candidate g = {cand['degeneracy']}: alpha = "
+                     f"{cand['density_per_volt'] * _CM2:.4g} cm^-2 V^-1")
+    for key in ("zero_density_voltage_drift", "hysteresis_shift"):
+        if key in result.extras:
+            lines.append(f"{key.replace('_', ' '):20s} {_value(result.extras[key], result.extras[key + '_stderr'], 'V')}")
+    lines.append("")
+    lines.append(f"{'filling':>8} {'kind':16} {'slope V/T':>11} {'points':>6} {'onset T':>8} {'B range T':>13}")
+    for st in result.states:
+        lines.append(f"{st.filling:>8} {st.kind:16} {st.slope:11.5g} {st.points:6d} "
+                     f"{st.onset_field:8.3g} {st.field_min:6.3g}-{st.field_max:<6.3g}")
+    if result.warnings:
+        lines.append("")
+        lines.extend(f"warning: {w}" for w in result.warnings)
+    return "\n".join(lines)
+
+
+def run(args):
+    dielectric = _dielectric(args)
+    fan_map = open_from_args(args)
+    result = fit_fan(fan_map, material=args.material, dielectric=dielectric,
+                     bootstrap=args.bootstrap)
+    if args.out:
+        from ..report import write_fan_outputs
+
+        write_fan_outputs(Path(args.out), fan_map, result)
+    if args.json:
+        write_text_atomic(args.json, dumps(result))
+    print(summary(result))
+    print("")
+    print(CAUTIONS[0])
+    return 0

@@ -1,0 +1,545 @@
+"""Fit a Landau fan: lever arm, zero-density voltage and the name of every state.
+
+:func:`fit_fan` runs the whole analysis of one fan map:
+
+1. ridges (:mod:`fanmap.ridges`): sub-pixel row minima of log R_xx weighted by depth,
+   prominence and a Hessian valley measure, linked into traces;
+2. the global vote for the fan origin and the slopes of its lines;
+3. a joint weighted least-squares fit of every assigned minimum to
+   V = V0(row) + s_j |B| with free slopes (the origin may drift linearly with the row
+   index and differ between sweep directions), iterated with robust weights;
+   lines that do not pass through the common origin (moiré satellites) are set aside;
+4. naming (:mod:`fanmap.naming`): main sequence, Berry phase, absolute scale;
+5. the final joint fit with the filling of every line fixed, n = alpha (V - V0),
+   nu = n h / (e B): shared alpha and V0; covariance errors and a bootstrap over traces;
+   optionally the Dirac quantum-capacitance term, kept only when an F-test says it helps.
+"""
+
+import numpy as np
+from scipy import stats
+
+from . import __version__
+from . import _schema as S
+from .errors import InputError, NoFanError
+from .materials import get_material
+from .naming import name_lines
+from .physics import (ELEMENTARY_CHARGE, FLUX_QUANTUM_SINGLE_ELECTRON, HBAR, VON_KLITZING,
+                      lever_arm_from_dielectric)
+from .results import FanResult, State
+from .ridges import (find_row_minima, link_traces, log_signal, valley_strength,
+                     vote_origin, vote_slopes)
+
+__all__ = ["fit_fan"]
+
+_MIN_LINE_POINTS = 8
+
+
+# --- input -----------------------------------------------------------------------
+
+def _arrays(fan_map):
+    """Gate (increasing), field, R_xx, R_xy and sweep direction as plain arrays."""
+    if S.RXX not in getattr(fan_map, "data_vars", {}):
+        raise InputError("the map has no 'rxx' variable; name the longitudinal resistance with "
+                         "the reading option --signal")
+    rxx = fan_map[S.RXX]
+    if set(rxx.dims) != {S.FIELD, S.GATE}:
+        raise InputError(f"rxx has dimensions {rxx.dims}; a fan map needs ('field', 'gate') "
+                         "(gate maps are analysed with 'fanmap gates')")
+    rxx = rxx.transpose(S.FIELD, S.GATE)
+    gate = np.asarray(fan_map[S.GATE].values, float)
+    field = np.asarray(fan_map[S.FIELD].values, float)
+    r = np.asarray(rxx.values, float)
+    rxy = None
+    if S.RXY in fan_map.data_vars:
+        rxy = np.asarray(fan_map[S.RXY].transpose(S.FIELD, S.GATE).values, float)
+    if gate.size >= 2 and gate[0] > gate[-1]:
+        gate, r = gate[::-1], r[:, ::-1]
+        rxy = rxy[:, ::-1] if rxy is not None else None
+    direction = None
+    if S.SWEEP_DIRECTION in fan_map.coords:
+        direction = np.sign(np.asarray(fan_map[S.SWEEP_DIRECTION].values, float))
+        if direction.shape != field.shape or np.unique(direction[direction != 0]).size < 2:
+            direction = None
+    if not np.isfinite(r).any():
+        raise InputError("rxx is NaN everywhere; check the file and the --signal option")
+    if gate.size < 10:
+        raise InputError(f"the map has only {gate.size} gate points; a fan needs at least 10")
+    rows = np.isfinite(r).sum(axis=1) >= 10
+    if rows.sum() < 3:
+        raise InputError(f"the map has {rows.sum()} usable field rows; a fan needs gate sweeps "
+                         "at several fields (is this a single sweep or a gate map?)")
+    if not np.all(np.diff(gate) > 0):
+        raise InputError("the gate coordinate is not monotonic; regrid the map first "
+                         "(fanmap.prepare)")
+    return gate, field, r, rxy, direction
+
+
+# --- linear least squares --------------------------------------------------------
+
+def _wls(X, y, w, robust=True, iterations=4):
+    """Weighted least squares with Tukey-biweight reweighting.
+
+    Returns (beta, covariance scaled by the residual variance, final weights, residuals).
+    """
+    weights = w.copy()
+    for _ in range(iterations if robust else 1):
+        sw = np.sqrt(weights)
+        beta, *_ = np.linalg.lstsq(X * sw[:, None], y * sw, rcond=None)
+        resid = y - X @ beta
+        if not robust:
+            break
+        scale = 1.4826 * np.median(np.abs(resid * np.sqrt(w))) + 1e-300
+        u = resid * np.sqrt(w) / (4.685 * scale)
+        weights = w * np.where(np.abs(u) < 1, (1 - u**2) ** 2, 0.0)
+    sw = np.sqrt(weights)
+    A = X * sw[:, None]
+    dof = max(int((weights > 0).sum()) - X.shape[1], 1)
+    chi2 = float(np.sum(weights * resid**2) / dof)
+    try:
+        cov = np.linalg.inv(A.T @ A) * chi2
+    except np.linalg.LinAlgError:
+        cov = np.full((X.shape[1], X.shape[1]), np.nan)
+    return beta, cov, weights, resid
+
+
+def _nuisance_columns(rows, n_rows, direction, use_drift, use_hysteresis):
+    cols, names = [], []
+    if use_drift:
+        cols.append((rows - (n_rows - 1) / 2) / max(n_rows - 1, 1))
+        names.append("drift")
+    if use_hysteresis:
+        cols.append(0.5 * direction[rows])
+        names.append("hysteresis")
+    return cols, names
+
+
+# --- assignment of minima to lines --------------------------------------------------
+
+def _tolerances(slopes, field, step, residual_scale, min_spacing_px=4.0):
+    """Assignment tolerance (V) of every line at every field, and whether it is resolved there.
+
+    A minimum belongs to a line if it lies within 35 % of the distance to the neighbouring
+    line and within max(3 points, 5 residual sigma); where the line and its neighbour are
+    closer than ``min_spacing_px`` points the line is not resolved (field-dependent
+    resolvability cut) and gives no points.
+    """
+    order = np.argsort(slopes)
+    neighbour = np.full(slopes.size, np.inf)
+    if slopes.size > 1:
+        gaps = np.diff(slopes[order])
+        neighbour[order] = np.minimum(np.r_[np.inf, gaps], np.r_[gaps, np.inf])
+    spacing = np.abs(np.asarray(field))[:, None] * neighbour[None, :]
+    tolerance = np.minimum(0.35 * spacing, max(3 * step, 5 * residual_scale))
+    return tolerance, spacing >= min_spacing_px * step
+
+
+def _assign(minima, origin_rows, slopes, tolerance, resolved):
+    """Index of the line each minimum belongs to (-1: none); see :func:`_tolerances`."""
+    if slopes.size == 0:
+        return np.full(len(minima), -1)
+    distance = minima.gate[:, None] - origin_rows[minima.row][:, None] \
+        - slopes[None, :] * minima.field[:, None]
+    nearest = np.argmin(np.abs(distance), axis=1)
+    offset = np.abs(distance[np.arange(len(minima)), nearest])
+    ok = (offset < tolerance[minima.row, nearest]) & resolved[minima.row, nearest]
+    return np.where(ok, nearest, -1)
+
+
+def _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance, resolved):
+    """Whether each line holds clearly more minima than chance would put near it.
+
+    Chance: in each row where the line is inside the window and resolved, the row's
+    minima density times the width of the acceptance band.  A line needs at least
+    twice the chance count, four standard deviations above it, and eight points.
+    """
+    n_rows = field.size
+    density = np.bincount(minima.row, minlength=n_rows) / gate.size
+    step = float(np.median(np.diff(gate)))
+    position = origin_rows[:, None] + slopes[None, :] * np.abs(field)[:, None]
+    inside = (position > gate[0]) & (position < gate[-1]) & resolved
+    expected = np.sum(inside * density[:, None] * 2 * tolerance / step, axis=0)
+    observed = np.bincount(line[line >= 0], minlength=slopes.size)
+    return (observed >= _MIN_LINE_POINTS) & (observed >= 2 * expected) \
+        & (observed >= expected + 4 * np.sqrt(expected))
+
+
+def _free_fit(m, line, slopes_n, origin_cols, names):
+    """Joint fit V = V0 + nuisance + s_j B with one free slope per line."""
+    sel = line >= 0
+    cols = [np.ones(sel.sum())] + [c[sel] for c in origin_cols]
+    onehot = np.zeros((sel.sum(), slopes_n))
+    onehot[np.arange(sel.sum()), line[sel]] = m.field[sel]
+    X = np.column_stack(cols + [onehot])
+    beta, cov, weights, resid = _wls(X, m.gate[sel], m.weight[sel])
+    k = 1 + len(origin_cols)
+    return {"beta": beta, "cov": cov, "origin": beta[:k], "origin_cov": cov[:k, :k],
+            "slopes": beta[k:], "slopes_stderr": np.sqrt(np.diag(cov)[k:]),
+            "weights": weights, "resid": resid, "sel": sel, "names": ["origin"] + names}
+
+
+def _origin_of_rows(origin, names, n_rows, direction):
+    rows = np.arange(n_rows)
+    value = np.full(n_rows, origin[0])
+    for coef, name in zip(origin[1:], names[1:]):
+        if name == "drift":
+            value = value + coef * (rows - (n_rows - 1) / 2) / max(n_rows - 1, 1)
+        elif name == "hysteresis":
+            value = value + coef * 0.5 * direction
+    return value
+
+
+# --- the fit ------------------------------------------------------------------------
+
+def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
+            min_prominence=4.0, quantum_capacitance="auto", superlattice=True):
+    """Calibrate a gate from a Landau fan map.
+
+    Parameters
+    ----------
+    fan_map : xarray.Dataset
+        Fan map (dims ``("field", "gate")``, ``rxx`` and optionally ``rxy`` in ohm,
+        optional ``sweep_direction`` coordinate), see :mod:`fanmap._schema`.
+    material : str
+        "auto", "2deg", "graphene-monolayer", "graphene-bilayer" or "moire-graphene".
+        The preset fixes the degeneracy when neither R_xy plateaus nor
+        broken-symmetry states do.
+    dielectric : tuple (thickness_m, relative_permittivity), optional
+        Parallel-plate prior on the lever arm, used for the scale only when nothing
+        better decides it.
+    bootstrap : int
+        Resamples of the bootstrap over ridge traces (0: skip).
+    seed : int
+        Seed of the bootstrap.
+    min_prominence : float
+        Detection threshold of row minima in units of the row noise.
+    quantum_capacitance : "auto", True or False
+        Try the Dirac quantum-capacitance term ("auto": for monolayer graphene, or a
+        Berry phase pi with a known scale); it is reported only when it improves the
+        fit significantly (F-test, p < 0.001).
+    superlattice : bool
+        For "moire-graphene" and "auto", hand the result to
+        :func:`fanmap.superlattice.analyse_superlattice` when that module exists.
+
+    Returns
+    -------
+    FanResult
+
+    Raises
+    ------
+    InputError
+        The map is not a fan map or holds no usable data.
+    NoFanError
+        No set of lines through a common origin was found.
+    """
+    preset = get_material(material)
+    gate, field, r, rxy, direction = _arrays(fan_map)
+    n_rows = field.size
+    b_abs = np.abs(field)
+    step = float(np.median(np.diff(gate)))
+    span = float(gate[-1] - gate[0])
+    warnings = []
+
+    logr, valid = log_signal(r)
+    valley = valley_strength(logr)
+    minima = find_row_minima(logr, valid, gate, field, min_prominence=min_prominence,
+                             valley=valley)
+    if len(minima) < 2 * _MIN_LINE_POINTS:
+        raise NoFanError(f"only {len(minima)} R_xx minima found in the whole map; no fan to fit. "
+                         "Check that the map shows quantum Hall minima (field high enough, "
+                         "the right --signal), or lower the detection threshold")
+    link_traces(minima, tolerance=2.5 * step)
+
+    # Global vote for the origin and the slopes.
+    votes = np.minimum(minima.prominence, 20.0) * (0.5 + 0.5 * minima.valley) * minima.field
+    votes /= np.max(votes)
+    b_ref = np.percentile(minima.field, 75)
+    bin_width = 0.7 * step / b_ref
+    coarse = np.linspace(gate[0] - span, gate[-1] + span, 301)
+    scores = vote_origin(minima.gate, minima.field, votes, coarse, bin_width)
+    best = coarse[np.argmax(scores)]
+    fine = np.linspace(best - 2 * (coarse[1] - coarse[0]), best + 2 * (coarse[1] - coarse[0]), 81)
+    v0 = fine[np.argmax(vote_origin(minima.gate, minima.field, votes, fine, bin_width))]
+    min_votes = _MIN_LINE_POINTS * np.median(votes)
+    slopes = vote_slopes((minima.gate - v0) / minima.field, votes, bin_width, min_votes)
+    # Lines of (nearly) zero slope stay at V0 at every field: the neutrality ridge, not a state.
+    slopes = slopes[np.abs(slopes) * b_abs.max() > 3 * step]
+    if slopes.size < 2:
+        raise NoFanError("fewer than two lines through a common origin were found; the map "
+                         "shows no Landau fan (or too few resolved states to fit one)")
+
+    use_hysteresis = direction is not None
+    dir_rows = direction if direction is not None else np.zeros(n_rows)
+    origin_rows = np.full(n_rows, v0)
+    residual_scale = step
+    satellite = np.zeros(0, int)
+    line = np.full(len(minima), -1)
+    free = None
+    for iteration in range(6):
+        tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
+        line = _assign(minima, origin_rows, slopes, tolerance, resolved)
+        keep = _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance,
+                                  resolved)
+        if keep.sum() < 2:
+            raise NoFanError("fewer than two fan lines have enough resolved minima to fit; "
+                             "the map shows no usable Landau fan")
+        if not keep.all():
+            slopes = slopes[keep]
+            continue
+        sel = line >= 0
+        # Drift along the row index is indistinguishable from a common slope when rows follow
+        # the field; then it is left to the final fit with fixed fillings.
+        rows_sel = minima.row[sel]
+        corr = abs(np.corrcoef(rows_sel, minima.field[sel])[0, 1]) if np.ptp(rows_sel) > 0 else 1
+        use_drift = n_rows >= 10 and corr < 0.98
+        cols, names = _nuisance_columns(minima.row, n_rows, dir_rows, use_drift, use_hysteresis)
+        free = _free_fit(minima, line, slopes.size, cols, names)
+        slopes = free["slopes"]
+        origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
+        good = free["weights"] > 0
+        residual_scale = 1.4826 * np.median(np.abs(free["resid"][good])) if good.any() else step
+        if iteration >= 2:
+            break
+
+    # Lines that miss the common origin (moire satellites, artefacts) leave the main fit.
+    sel = free["sel"]
+    own_offset = np.zeros(slopes.size)
+    own_err = np.zeros(slopes.size)
+    for j in range(slopes.size):
+        pts = np.flatnonzero(line == j)
+        y = minima.gate[pts] - origin_rows[minima.row[pts]]
+        X = np.column_stack([np.ones(pts.size), minima.field[pts]])
+        beta, cov, *_ = _wls(X, y, minima.weight[pts])
+        own_offset[j], own_err[j] = beta[0], np.sqrt(cov[0, 0])
+    through_origin = (np.abs(own_offset) < 3 * step) | (np.abs(own_offset) < 5 * own_err)
+    if (~through_origin).any():
+        satellite = np.flatnonzero(~through_origin)
+        if through_origin.sum() < 2:
+            raise NoFanError("the lines found do not share a common origin; no Landau fan")
+        slopes = slopes[through_origin]
+        tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
+        line = _assign(minima, origin_rows, slopes, tolerance, resolved)
+        free = _free_fit(minima, line, slopes.size, cols, names)
+        slopes = free["slopes"]
+        origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
+
+    # Per-line summaries for naming.
+    n_lines = slopes.size
+    counts = np.bincount(line[line >= 0], minlength=n_lines)
+    onsets = np.array([_onset(minima, line == j) for j in range(n_lines)])
+    field_min = np.array([minima.field[line == j].min() for j in range(n_lines)])
+    field_max = np.array([minima.field[line == j].max() for j in range(n_lines)])
+    hall = _hall_fillings(minima, line, n_lines, rxy, gate) if rxy is not None else None
+    prior = None
+    if dielectric is not None:
+        thickness, permittivity = dielectric
+        prior = float(lever_arm_from_dielectric(thickness, permittivity))
+    naming = name_lines(slopes, free["slopes_stderr"], onsets, weights=counts,
+                        hall_fillings=hall, material=material, lever_arm_prior=prior)
+    warnings += naming.warnings
+
+    final = _fixed_fit(minima, line, naming.fillings, n_rows, dir_rows, use_hysteresis,
+                       bootstrap, seed)
+    ambiguous = naming.degeneracy is None
+    c, c_err = final["c"], final["c_err"]
+    alpha = 1 / (FLUX_QUANTUM_SINGLE_ELECTRON * c)
+    alpha_err = alpha * c_err / c
+    alpha_boot = alpha * final["c_boot"] / c
+    extras = {"main_sequence_unit": naming.unit, "main_sequence_offset": naming.offset,
+              "common_slope_shift": naming.shift,
+              "lines": int(n_lines), "points": int(final["points"]),
+              "residual_rms": final["residual_rms"]}
+    extras.update(final["nuisance"])
+    if ambiguous:
+        # Fillings were in units of g: alpha above is alpha / g.
+        for cand in naming.candidates:
+            cand["density_per_volt"] = cand["degeneracy"] * alpha
+            cand["density_per_volt_stderr"] = cand["degeneracy"] * alpha_err
+            cand["capacitance_per_area"] = ELEMENTARY_CHARGE * cand["density_per_volt"]
+        alpha = alpha_err = alpha_boot = np.nan
+    v0_fit, v0_err, v0_boot = final["v0"], final["v0_err"], final["v0_boot"]
+
+    if not ambiguous:
+        qc = _quantum_capacitance(minima, line, naming.fillings, final, quantum_capacitance,
+                                  material, naming.berry_phase)
+        if qc is not None:
+            extras["quantum_capacitance"] = qc
+            if qc["significant"]:
+                alpha, alpha_err = qc["density_per_volt"], qc["density_per_volt_stderr"]
+                v0_fit, v0_err = qc["zero_density_voltage"], qc["zero_density_voltage_stderr"]
+                warnings.append("the lines bend near neutrality: the quantum-capacitance term "
+                                f"(v_F = {qc['fermi_velocity']:.3g} m/s) improves the fit "
+                                "significantly; alpha is the geometric lever arm")
+    if not (gate[0] <= v0_fit <= gate[-1]):
+        warnings.append(f"the fan origin V0 = {v0_fit:.4g} V lies outside the gate window "
+                        f"[{gate[0]:.4g}, {gate[-1]:.4g}] V; it is extrapolated from the fit")
+    if satellite.size:
+        warnings.append(f"{satellite.size} line(s) do not pass through the fan origin "
+                        "(satellites or artefacts); kept out of the main fit")
+
+    states, state_of_line = [], np.full(n_lines, -1)
+    for j in range(n_lines):
+        if naming.kinds[j] is None:
+            continue
+        state_of_line[j] = len(states)
+        measured = (slopes[j] - naming.shift) * (naming.scale if not ambiguous else 1 / naming.unit)
+        states.append(State(
+            filling=naming.labels[j], kind=naming.kinds[j], slope=float(slopes[j]),
+            intercept=float(v0_fit), points=int(counts[j]), field_min=float(field_min[j]),
+            field_max=float(field_max[j]), filling_value=float(measured),
+            filling_stderr=float(free["slopes_stderr"][j]
+                                 * (naming.scale if not ambiguous else 1 / naming.unit)),
+            onset_field=float(onsets[j]),
+            distance_to_fraction_sigma=naming.distance_sigma[j]))
+    unexplained = [naming.labels[j] for j in range(n_lines) if naming.kinds[j] is None]
+    if unexplained:
+        warnings.append(f"{len(unexplained)} line(s) through the origin match no integer or "
+                        f"simple fraction (nu = {', '.join(unexplained)}); left unnamed")
+    order = np.argsort([s.slope for s in states])
+    remap = np.full(len(states) + 1, -1)
+    remap[order] = np.arange(len(states))
+    states = [states[i] for i in order]
+    point_state = np.where(line >= 0, state_of_line[np.maximum(line, 0)], -1)
+    point_state = np.where(point_state >= 0, remap[point_state], -1)
+
+    result = FanResult(
+        density_per_volt=float(alpha), density_per_volt_stderr=float(alpha_err),
+        capacitance_per_area=float(ELEMENTARY_CHARGE * alpha),
+        zero_density_voltage=float(v0_fit), zero_density_voltage_stderr=float(v0_err),
+        density_offset=float(-alpha * v0_fit), degeneracy=naming.degeneracy,
+        berry_phase=naming.berry_phase, scale_from=naming.scale_from, states=states,
+        density_per_volt_bootstrap_stderr=float(alpha_boot),
+        zero_density_voltage_bootstrap_stderr=float(v0_boot),
+        capacitance_per_area_stderr=float(ELEMENTARY_CHARGE * alpha_err),
+        scale_candidates=naming.candidates, warnings=warnings, material=material,
+        extras=extras, source=fan_map.attrs.get("source"), version=__version__,
+        ridge_points={"field": minima.field, "gate": minima.gate, "row": minima.row,
+                      "state": point_state, "weight": minima.weight, "trace": minima.trace},
+    )
+    if superlattice and material in ("moire-graphene", "auto"):
+        _add_superlattice(fan_map, result, preset)
+    return result
+
+
+def _onset(minima, on_line):
+    """Lowest field of a line, from its points in traces of five or more (stray points aside)."""
+    traces, counts = np.unique(minima.trace[on_line], return_counts=True)
+    long = np.isin(minima.trace, traces[(traces >= 0) & (counts >= 5)]) & on_line
+    return float(np.percentile(minima.field[long if long.sum() >= 5 else on_line], 5))
+
+
+def _hall_fillings(minima, line, n_lines, rxy, gate):
+    """|nu| = R_K / |R_xy| along each line (median over its upper-field half)."""
+    out = np.full(n_lines, np.nan)
+    column = np.clip(np.searchsorted(gate, minima.gate), 0, gate.size - 1)
+    values = np.abs(rxy[minima.row, column])
+    for j in range(n_lines):
+        pts = np.flatnonzero(line == j)
+        if pts.size < 4:
+            continue
+        upper = pts[minima.field[pts] >= np.median(minima.field[pts])]
+        v = values[upper]
+        v = v[np.isfinite(v) & (v > 0)]
+        if v.size >= 3:
+            out[j] = VON_KLITZING / np.median(v)
+    return out
+
+
+def _groups(minima, line):
+    """Bootstrap unit of every point: its ridge trace, or its line for loose points."""
+    return np.where(minima.trace >= 0, minima.trace, minima.trace.max() + 1 + line)
+
+
+def _fixed_fit(minima, line, fillings, n_rows, dir_rows, use_hysteresis, bootstrap, seed):
+    """Joint fit V = V0 + nuisance + c nu_j |B| with every filling fixed; c = (h/e) / alpha."""
+    named = np.isfinite(fillings)
+    sel = (line >= 0) & named[np.maximum(line, 0)]
+    nu = fillings[np.maximum(line, 0)]
+    rows = minima.row
+    use = {"drift": n_rows >= 10, "hysteresis": use_hysteresis}
+    while True:
+        cols, names = _nuisance_columns(rows, n_rows, dir_rows, use["drift"], use["hysteresis"])
+        X = np.column_stack([np.ones(sel.sum())] + [col[sel] for col in cols]
+                            + [(nu * minima.field)[sel]])
+        y, w = minima.gate[sel], minima.weight[sel]
+        beta, cov, weights, resid = _wls(X, y, w)
+        err = np.sqrt(np.diag(cov))
+        weak = [n for i, n in enumerate(names, start=1) if abs(beta[i]) < 3 * err[i]]
+        if not weak:
+            break
+        use[weak[0]] = False
+    result = {"v0": beta[0], "v0_err": err[0], "c": beta[-1], "c_err": err[-1],
+              "points": int((weights > 0).sum()),
+              "residual_rms": float(np.sqrt(np.average(resid**2, weights=weights + 1e-300))),
+              "nuisance": {}, "X": X, "y": y, "weights": weights, "sel": sel,
+              "rss": float(np.sum(weights * resid**2))}
+    for i, name in enumerate(names, start=1):
+        key = "zero_density_voltage_drift" if name == "drift" else "hysteresis_shift"
+        result["nuisance"][key] = float(beta[i])
+        result["nuisance"][key + "_stderr"] = float(err[i])
+    result["v0_boot"], result["c_boot"] = np.nan, np.nan
+    if bootstrap:
+        groups = _groups(minima, line)[sel]
+        labels, index = np.unique(groups, return_inverse=True)
+        sw = weights
+        A = np.zeros((labels.size, X.shape[1], X.shape[1]))
+        b = np.zeros((labels.size, X.shape[1]))
+        np.add.at(A, index, (X[:, :, None] * X[:, None, :]) * sw[:, None, None])
+        np.add.at(b, index, X * (sw * y)[:, None])
+        rng = np.random.default_rng(seed)
+        draws = rng.multinomial(labels.size, np.full(labels.size, 1 / labels.size),
+                                size=bootstrap).astype(float)
+        AA = np.einsum("rg,gij->rij", draws, A)
+        bb = np.einsum("rg,gi->ri", draws, b)
+        ok = np.abs(np.linalg.det(AA)) > 0
+        sols = np.linalg.solve(AA[ok], bb[ok][..., None])[..., 0]
+        if sols.shape[0] > 10:
+            result["v0_boot"] = float(np.std(sols[:, 0], ddof=1))
+            result["c_boot"] = float(np.std(sols[:, -1], ddof=1))
+    return result
+
+
+def _quantum_capacitance(minima, line, fillings, final, mode, material, berry_phase):
+    """Fit V = V0 + e n / C + v_F hbar sqrt(pi |n|) sgn(n) / e and test it against the linear fit."""
+    dirac = material == "graphene-monolayer" or (material == "auto" and berry_phase == 1)
+    if mode is False or (mode == "auto" and not dirac):
+        return None
+    X, y, w = final["X"], final["y"], final["weights"]
+    n = X[:, -1] / FLUX_QUANTUM_SINGLE_ELECTRON  # nu |B| e / h
+    root = np.sign(n) * np.sqrt(np.abs(n)) * HBAR * np.sqrt(np.pi) / ELEMENTARY_CHARGE
+    Xq = np.column_stack([X[:, :-1], ELEMENTARY_CHARGE * n, root])
+    beta, cov, *_ = _wls(Xq, y, w, robust=False)
+    resid = y - Xq @ beta
+    rss1 = float(np.sum(w * resid**2))
+    dof = max(int((w > 0).sum()) - Xq.shape[1], 1)
+    f_value = (final["rss"] - rss1) / (rss1 / dof)
+    p_value = float(stats.f.sf(f_value, 1, dof)) if f_value > 0 else 1.0
+    inv_c, v_f = beta[-2], beta[-1]
+    err = np.sqrt(np.diag(cov))
+    capacitance = 1 / inv_c
+    significant = bool(p_value < 1e-3 and 1e5 < v_f < 1e7 and err[-1] < 0.3 * abs(v_f))
+    return {"significant": significant, "fermi_velocity": float(v_f),
+            "fermi_velocity_stderr": float(err[-1]), "f_statistic": float(f_value),
+            "p_value": p_value, "capacitance_per_area": float(capacitance),
+            "density_per_volt": float(capacitance / ELEMENTARY_CHARGE),
+            "density_per_volt_stderr": float(err[-2] / inv_c**2 / ELEMENTARY_CHARGE),
+            "zero_density_voltage": float(beta[0]),
+            "zero_density_voltage_stderr": float(err[0])}
+
+
+def _add_superlattice(fan_map, result, preset):
+    """Hand the fit to the superlattice analysis (moire satellites) when that module exists."""
+    try:
+        from .superlattice import analyse_superlattice
+    except ImportError:
+        return
+    if not np.isfinite(result.density_per_volt):
+        if result.material == "moire-graphene":
+            result.warnings.append("superlattice analysis skipped: it needs the absolute scale")
+        return
+    finding = analyse_superlattice(fan_map, result, flavours=preset.flavours or 4,
+                                   material=result.material)
+    result.superlattice = finding.superlattice
+    result.states.extend(finding.satellites)
+    result.extras["superlattice_notes"] = list(finding.notes)
+    if finding.seen or result.material == "moire-graphene":
+        result.warnings.extend(finding.notes)
