@@ -194,37 +194,72 @@ def _draw_state_line(ax, x_fit, y_fit, x_ext, y_ext, style):
     ax.plot(x_fit, y_fit, linewidth=style["linewidth"], path_effects=_style.halo(), **kw)
 
 
+def _spread(centres, widths, lo, hi, pad):
+    """Label centres as close as possible to ``centres`` (sorted) without overlapping.
+
+    Least squares under minimum spacings: with q_i = p_i - (cumulative spacing)
+    the constraint is q non-decreasing, solved by pooling adjacent violators;
+    then the run is kept inside [lo, hi] where it fits.
+    """
+    gaps = np.concatenate([[0.0], (widths[:-1] + widths[1:]) / 2 + pad])
+    offset = np.cumsum(gaps)
+    target = centres - offset
+    blocks = []                                   # [mean, count]
+    for value in target:
+        blocks.append([value, 1])
+        while len(blocks) > 1 and blocks[-2][0] > blocks[-1][0]:
+            v2, n2 = blocks.pop()
+            v1, n1 = blocks.pop()
+            blocks.append([(v1 * n1 + v2 * n2) / (n1 + n2), n1 + n2])
+    q = np.concatenate([np.full(n, v) for v, n in blocks])
+    q = np.maximum(q, lo + widths[0] / 2)
+    q = np.minimum(q, hi - widths[-1] / 2 - offset[-1])
+    return q + offset
+
+
 def _place_top_labels(fig, ax, positions, texts, kinds):
-    """Labels above the top edge at data x ``positions``, stacked in tiers where they would collide."""
+    """Labels above the top edge, spread sideways where they would collide, with leader lines.
+
+    When the labels need more than the axes' width they go on two rows.
+    """
     transform = blended_transform_factory(ax.transData, ax.transAxes)
     order = np.argsort(positions)
-    fig.canvas.draw()
+    fig.draw_without_rendering()       # settles the layout so that label widths are final
     renderer = fig.canvas.get_renderer()
-    tiers_right = []         # right edge (display x) of the last label in each tier
-    placed = []
-    for i in order:
-        style = _style.kind_style(kinds[i])
-        text = ax.text(positions[i], 1.012, texts[i], transform=transform, ha="center",
-                       va="bottom", fontsize=_style.FONT_SIZE - 1, clip_on=False,
-                       color="#111111", fontweight="bold" if kinds[i] == "integer" else "normal",
-                       fontstyle="italic" if kinds[i] == "fractional" else "normal")
-        text._fanmap_kind = style["label"]
-        box = text.get_window_extent(renderer)
-        pad = 2.0
-        for tier, right in enumerate(tiers_right):
-            if box.x0 > right + pad:
-                tiers_right[tier] = box.x1
-                break
-        else:
-            tier = len(tiers_right)
-            tiers_right.append(box.x1)
-        if tier:
-            height = box.height / ax.get_window_extent(renderer).height
-            text.set_y(1.012 + tier * 1.05 * height)
-            ax.plot([positions[i], positions[i]], [1.0, 1.012 + tier * 1.05 * height],
-                    transform=transform, color="#777777", linewidth=0.5, clip_on=False)
-        placed.append(text)
-    return placed
+    size = _style.FONT_SIZE - 1
+    fonts = [{"fontsize": size, "color": "#111111",
+              "fontweight": "bold" if kinds[i] == "integer" else "normal",
+              "fontstyle": "italic" if kinds[i] == "fractional" else "normal"} for i in order]
+    widths = []
+    for i, font in zip(order, fonts):            # measure each label once, then draw it
+        probe = ax.text(0, 0, texts[i], **font)
+        widths.append(probe.get_window_extent(renderer).width)
+        probe.remove()
+    widths = np.array(widths)
+    centres = np.array([ax.transData.transform((positions[i], 0.0))[0] for i in order])
+    box = ax.get_window_extent(renderer)
+    lo, hi, pad = box.x0 - 8.0, box.x1 + 8.0, 6.0
+    rows = 1 if widths.sum() + pad * len(widths) <= hi - lo else 2
+    placed = np.empty_like(centres)
+    for row in range(rows):
+        members = np.arange(row, len(centres), rows)
+        placed[members] = _spread(centres[members], widths[members], lo, hi, pad)
+    points_per_pixel = 72.0 / fig.dpi
+    artists = []
+    for k, (i, font) in enumerate(zip(order, fonts)):
+        lift = 2 + (k % rows) * 1.45 * size
+        leader = abs(placed[k] - centres[k]) > 1.0 or k % rows
+        extra = {}
+        if leader:
+            lift += 5
+            extra["arrowprops"] = {"arrowstyle": "-", "color": "#888888", "linewidth": 0.5,
+                                   "shrinkA": 1, "shrinkB": 0}
+        artists.append(ax.annotate(
+            texts[i], (positions[i], 1.0), xycoords=transform,
+            xytext=((placed[k] - centres[k]) * points_per_pixel, lift),
+            textcoords="offset points", ha="center", va="bottom", annotation_clip=False,
+            **font, **extra))
+    return artists
 
 
 def _place_side_labels(ax, points, texts, kinds):
@@ -770,13 +805,20 @@ def plot_nd_map(nd_map, result=None, *, scale="auto"):
 # --- batch ---------------------------------------------------------------------
 
 def _row_label(row, k):
-    device, cooldown = row.get("device"), row.get("cooldown")
-    if device is not None and cooldown is not None:
-        return f"{device} / {cooldown}"
-    for key in ("name", "map", "source", "device"):
+    parts = [str(row[key]) for key in ("device", "cooldown") if row.get(key)]
+    for key in ("map", "name", "source", "path"):
         if row.get(key):
-            return str(row[key]).rsplit("/", 1)[-1]
-    return f"map {k + 1}"
+            parts.append(str(row[key]).rsplit("/", 1)[-1])
+            break
+    return " / ".join(parts) if parts else f"map {k + 1}"
+
+
+def _missing_text(row):
+    if str(row.get("map_kind", "")) == S.GATES:
+        return "gate map"
+    if str(row.get("status", "")).lower() == "failed" or row.get("error"):
+        return "failed"
+    return "no fit"
 
 
 def _as_float(value):
@@ -792,8 +834,8 @@ def plot_batch_summary(rows):
 
     ``rows`` is a list of dicts with ``density_per_volt`` (m^-2 V^-1),
     ``zero_density_voltage`` (V), their ``*_stderr``, and ``device`` /
-    ``cooldown`` (or ``name``) for the labels.  Rows without a value (failed
-    maps) are listed and marked "no fit".
+    ``cooldown`` and ``map`` (or ``name``) for the labels.  Rows without a value
+    are listed and marked "failed", "gate map" or "no fit".
     """
     rows = list(rows)
     if not rows:
@@ -820,7 +862,7 @@ def plot_batch_summary(rows):
                                 capsize=2.5, markersize=5, elinewidth=1, linestyle="none",
                                 **style)
                 else:
-                    ax.text(0.5, y[k], "no fit", transform=ax.get_yaxis_transform(),
+                    ax.text(0.5, y[k], _missing_text(rows[k]), transform=ax.get_yaxis_transform(),
                             ha="center", va="center", color="#a33", fontsize=_style.FONT_SIZE - 1)
             ax.set_xlabel(xlabel)
             ax.grid(axis="x", color="#e3e3e3", linewidth=0.6)

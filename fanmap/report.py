@@ -324,14 +324,14 @@ def _calibration_rows(result):
         ("lever arm α", _num(alpha / 1e4), _num(alpha_err / 1e4, 2), _num(boot / 1e4, 2),
          "cm<sup>−2</sup> V<sup>−1</sup>"),
         ("lever arm α", _num(alpha), _num(alpha_err, 2), _num(boot, 2), "m<sup>−2</sup> V<sup>−1</sup>"),
-        ("capacitance per area C = eα", _num(cap * 1e2), _num(cap_err * 1e2, 2) if _finite(cap_err)
-         else "–", "–", "µF cm<sup>−2</sup>"),
+        ("capacitance per area C = eα", _num(cap * 1e5), _num(cap_err * 1e5, 2) if _finite(cap_err)
+         else "–", "–", "nF cm<sup>−2</sup>"),
         ("capacitance per area C = eα", _num(cap), _num(cap_err, 2) if _finite(cap_err) else "–",
          "–", "F m<sup>−2</sup>"),
         ("zero-density voltage V<sub>0</sub>", _num(v0, 5), _num(v0_err, 2), _num(v0_boot, 2), "V"),
-        ("density at V<sub>g</sub> = 0", _num(offset / 1e4), _num(offset_err / 1e4, 2)
+        ("density offset n(V<sub>g</sub> = 0)", _num(offset / 1e4), _num(offset_err / 1e4, 2)
          if offset_err is not None else "–", "–", "cm<sup>−2</sup>"),
-        ("density at V<sub>g</sub> = 0", _num(offset), _num(offset_err, 2)
+        ("density offset n(V<sub>g</sub> = 0)", _num(offset), _num(offset_err, 2)
          if offset_err is not None else "–", "–", "m<sup>−2</sup>"),
         ("degeneracy g", _esc(result.degeneracy if result.degeneracy is not None
                               else "undetermined"), "", "", ""),
@@ -517,10 +517,10 @@ def _gate_rows(result):
         return (name, _num(value * scale if _finite(value) else value, digits),
                 _num(err * scale, 2) if _finite(err) else "–", units)
     return [
-        row("top-gate capacitance C<sub>t</sub>", "top_capacitance", "µF cm<sup>−2</sup>", 1e2),
+        row("top-gate capacitance C<sub>t</sub>", "top_capacitance", "nF cm<sup>−2</sup>", 1e5),
         row("top-gate lever arm C<sub>t</sub>/e", "top_capacitance", "cm<sup>−2</sup> V<sup>−1</sup>",
             1e-4 / ELEMENTARY_CHARGE),
-        row("bottom-gate capacitance C<sub>b</sub>", "bottom_capacitance", "µF cm<sup>−2</sup>", 1e2),
+        row("bottom-gate capacitance C<sub>b</sub>", "bottom_capacitance", "nF cm<sup>−2</sup>", 1e5),
         row("bottom-gate lever arm C<sub>b</sub>/e", "bottom_capacitance",
             "cm<sup>−2</sup> V<sup>−1</sup>", 1e-4 / ELEMENTARY_CHARGE),
         row("capacitance ratio C<sub>t</sub>/C<sub>b</sub>", "capacitance_ratio", ""),
@@ -623,6 +623,12 @@ def _relative(target, start_dir):
     return Path(os.path.relpath(Path(target).resolve(), Path(start_dir).resolve())).as_posix()
 
 
+# Columns of the batch index (others stay in the results table): identity first, then results.
+_INDEX_FIRST = ("device", "cooldown", "map", "name", "source", "acquired", "map_kind", "status")
+_INDEX_OTHER = ("material", "degeneracy", "berry_phase", "states", "scale_from",
+                "twist_angle_deg", "top_capacitance", "bottom_capacitance", "warnings")
+
+
 def write_batch_report(out_dir, table, pages):
     """Write ``index.html`` for a batch: the summary figure, the table and links to each map's page.
 
@@ -636,8 +642,10 @@ def write_batch_report(out_dir, table, pages):
     table : list of dict or dict of lists
         One row per map: ``device``, ``cooldown``, ``name`` or ``source``,
         ``density_per_volt`` (m^-2 V^-1), ``zero_density_voltage`` (V), their
-        ``*_stderr``, and optionally ``status`` and ``error``; other scalar
-        columns are shown as they are.
+        ``*_stderr``, and optionally ``map``, ``acquired``, ``map_kind``,
+        ``status``, ``error``, ``warnings`` and a few result columns (material,
+        degeneracy, Berry phase, states, twist angle, gate capacitances), as
+        in :data:`fanmap.archive.TABLE_COLUMNS`.
     pages : list or dict or None
         Each row's report page (path), aligned with the rows, or keyed by the
         row's ``name``/``map``/``source``.
@@ -656,12 +664,8 @@ def write_batch_report(out_dir, table, pages):
                      "error); rows without a fit failed, see the table.",
                      F.plot_batch_summary(rows))
     index_path = out_dir / INDEX_NAME
-    first = ["device", "cooldown", "name", "source", "status"]
-    known = {"density_per_volt", "density_per_volt_stderr", "zero_density_voltage",
-             "zero_density_voltage_stderr", "error", "report", "page"}
-    other = [k for k in dict.fromkeys(k for r in rows for k in r)
-             if k not in known and k not in first and not isinstance(rows[0].get(k), (list, dict))]
-    shown = [k for k in first if any(k in r for r in rows)]
+    shown = [k for k in _INDEX_FIRST if any(k in r for r in rows)]
+    other = [k for k in _INDEX_OTHER if any(k in r for r in rows)]
     header = [_esc(k) for k in shown] + ["α (cm<sup>−2</sup> V<sup>−1</sup>)", "± α",
                                          "V<sub>0</sub> (V)", "± V<sub>0</sub>"] + \
         [_esc(k) for k in other] + ["report", "error"]
