@@ -15,6 +15,8 @@ coordinate ``u`` (V, "equivalent top-gate voltage"):
   unknown point (the resistance at neutrality versus displacement field).
 """
 
+import warnings
+
 import numpy as np
 from scipy import interpolate, signal
 
@@ -29,8 +31,9 @@ def log_signal(values):
     return np.log(values + max(floor, np.finfo(float).tiny))
 
 
-def _bin_index(z, top, bottom, q):
-    step = max(abs(top[1] - top[0]), q * abs(bottom[1] - bottom[0]))
+def _bin_index(z, top, bottom, q, step=None):
+    if step is None:
+        step = max(abs(top[1] - top[0]), q * abs(bottom[1] - bottom[0]))
     u = top[None, :] + q * bottom[:, None]
     u0 = np.nanmin(u)
     return ((u - u0) / step).astype(np.int64), u0, step
@@ -60,20 +63,24 @@ def best_ratio(z, top, bottom, low=1e-2, high=1e2):
     the adjusted fraction of the variance of ``z`` explained by u = V_t + q V_b.
     """
     finite = np.isfinite(z)
-    coarse = np.geomspace(low, high, 721)
+    coarse = np.geomspace(low, high, 401)
     shares = np.array([_explained_share(z, top, bottom, q, finite) for q in coarse])
     best = int(np.argmax(shares))
-    lo, hi = coarse[max(best - 3, 0)], coarse[min(best + 3, coarse.size - 1)]
-    fine = np.geomspace(lo, hi, 61)
+    lo, hi = coarse[max(best - 2, 0)], coarse[min(best + 2, coarse.size - 1)]
+    fine = np.geomspace(lo, hi, 41)
     fine_shares = np.array([_explained_share(z, top, bottom, q, finite) for q in fine])
     best = int(np.argmax(fine_shares))
     return float(fine[best]), float(fine_shares[best])
 
 
-def profile(z, top, bottom, q):
-    """Map ``z`` averaged along the lines V_t + q V_b = u: returns ``(u, mean, count)``."""
+def profile(z, top, bottom, q, fine=False):
+    """Map ``z`` averaged along the lines V_t + q V_b = u: returns ``(u, mean, count)``.
+
+    ``fine=True`` bins at half the finer pixel step (for narrow, dense lines).
+    """
     finite = np.isfinite(z)
-    index, u0, step = _bin_index(z, top, bottom, q)
+    step = 0.5 * min(top[1] - top[0], q * (bottom[1] - bottom[0])) if fine else None
+    index, u0, step = _bin_index(z, top, bottom, q, step)
     counts = np.bincount(index[finite])
     sums = np.bincount(index[finite], z[finite])
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -83,7 +90,7 @@ def profile(z, top, bottom, q):
     return centres[keep], means[keep], counts[keep]
 
 
-def rotated_grid(values, top, bottom, q):
+def rotated_grid(values, top, bottom, q, step=None):
     """Resample a map onto u = V_t + q V_b (along traces) and w = V_t - q V_b (across).
 
     With q = C_b/C_t, u is proportional to the density and w to the
@@ -93,6 +100,8 @@ def rotated_grid(values, top, bottom, q):
     resampled)`` with ``resampled`` of shape (len(w), len(u)), NaN outside the map.
     """
     fine = min(top[1] - top[0], q * (bottom[1] - bottom[0]))
+    if step is not None:
+        fine = min(fine, step)
     coarse = max(top[1] - top[0], q * (bottom[1] - bottom[0]))
     corners_t, corners_b = np.meshgrid(top[[0, -1]], bottom[[0, -1]])
     u_c, w_c = corners_t + q * corners_b, corners_t - q * corners_b
@@ -112,9 +121,11 @@ def _lorentz_batch(t, y, weights, x0, width, sign, iterations=30):
     """
     n = y.shape[0]
     edge = np.where(weights > 0, y, np.nan)
-    base = np.nanmedian(np.concatenate([edge[:, :2], edge[:, -2:]], axis=1), axis=1)
-    base = np.where(np.isfinite(base), base, np.nanmedian(edge, axis=1))
-    peak = np.nanmax(sign * edge, axis=1) * sign
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # windows with NaN ends
+        base = np.nanmedian(np.concatenate([edge[:, :2], edge[:, -2:]], axis=1), axis=1)
+        base = np.where(np.isfinite(base), base, np.nanmedian(edge, axis=1))
+        peak = np.nanmax(sign * edge, axis=1) * sign
     params = np.column_stack([x0, np.log(width), np.maximum(sign * (peak - base), 1e-12),
                               base, np.zeros(n)])
 

@@ -51,9 +51,9 @@ _QUANTUM = ph.ELEMENTARY_CHARGE**2 / ph.PLANCK      # e^2/h: s * nu * B * e^2/h 
 
 # --- per-map ridge finding -------------------------------------------------------
 
-def _traces(arrays, q):
+def _traces(arrays, q, step=None):
     """Traces at constant displacement across the constant-density lines (see rotated_grid)."""
-    u, w, values = ridges.rotated_grid(arrays["rxx"], arrays["top"], arrays["bottom"], q)
+    u, w, values = ridges.rotated_grid(arrays["rxx"], arrays["top"], arrays["bottom"], q, step)
     return {"u": u, "w": w, "values": values}
 
 
@@ -114,6 +114,16 @@ def _neutrality_ridge(arrays, q, name):
             "line_index": np.array([0]), "neutral_u": u[peak]}
 
 
+def _vertex(u, p, index):
+    """Sub-bin positions of extrema of p at ``index`` (three-point parabola)."""
+    index = np.clip(index, 1, p.size - 2)
+    left, mid, right = p[index - 1], p[index], p[index + 1]
+    curve = left - 2 * mid + right
+    with np.errstate(invalid="ignore", divide="ignore"):
+        shift = np.where(curve != 0, 0.5 * (left - right) / curve, 0.0)
+    return u[index] + np.clip(shift, -0.5, 0.5) * (u[1] - u[0])
+
+
 def _fundamental_spacing(positions):
     """Largest spacing of which (nearly) every gap between lines is an integer multiple."""
     gaps = np.diff(np.sort(positions))
@@ -130,10 +140,11 @@ def _fundamental_spacing(positions):
 
 def _quantum_hall_lines(arrays, q, name):
     z = ridges.log_signal(arrays["rxx"])
-    u, p, _ = ridges.profile(z, arrays["top"], arrays["bottom"], q)
+    u, p, _ = ridges.profile(z, arrays["top"], arrays["bottom"], q, fine=True)
     ps = _smooth(p)
-    noise = np.std(p - ps) + 1e-12
-    minima, props = signal.find_peaks(-ps, prominence=max(6 * noise, 0.05 * np.ptp(ps)))
+    # Robust noise of the profile: most of it is smooth background between narrow lines.
+    noise = 1.4826 * np.median(np.abs(np.diff(p, 2))) / np.sqrt(6) + 1e-12
+    minima, props = signal.find_peaks(-p, prominence=max(6 * noise, 0.03 * np.ptp(p)))
     if minima.size < 2:
         raise NoFanError(
             f"{name}: fewer than two quantum Hall minima along constant-density lines at "
@@ -141,7 +152,7 @@ def _quantum_hall_lines(arrays, q, name):
             "filling factors (check the field with --field)")
     prom = props["prominences"]
     strong = prom >= 0.25 * np.sort(prom)[-min(3, prom.size):].mean()
-    positions = u[minima[strong]]
+    positions = _vertex(u, p, minima[strong])
     spacing = _fundamental_spacing(positions)
     rel = (positions - positions[0]) / spacing
     on_grid = np.abs(rel - np.rint(rel)) < 0.2
@@ -150,7 +161,7 @@ def _quantum_hall_lines(arrays, q, name):
         raise NoFanError(f"{name}: the quantum Hall minima do not form an evenly spaced family")
     slope, intercept = np.polyfit(index, positions, 1)
     spacing = float(slope)
-    traces = _traces(arrays, q)
+    traces = _traces(arrays, q, spacing / 10)
     step = traces["u"][1] - traces["u"][0]
     half_window = int(np.clip(np.rint(0.4 * spacing / step), 4, traces["u"].size // 4))
     widths = [_hwhm(u, ps, int(np.argmin(np.abs(u - x))), -1) for x in positions]
@@ -372,7 +383,7 @@ def _weighted_lstsq(x, y, w):
     return coef
 
 
-def _joint_fit(maps, use_scale, seed=0):
+def _joint_fit(maps, use_scale, seed=0, bootstrap=200):
     x, y, sigma, groups, owner, has_k, relative = _design(maps, use_scale)
     keep = np.ones(y.size, bool)
     scale = np.ones(len(maps))
@@ -397,14 +408,18 @@ def _joint_fit(maps, use_scale, seed=0):
     members = np.argsort(pos, kind="stable")
     starts = np.searchsorted(pos[members], np.arange(unique.size))
     ends = np.append(starts[1:], members.size)
+    lengths = ends - starts
     samples = []
-    for _ in range(200):
+    for _ in range(bootstrap):
         pick = rng.integers(0, unique.size, unique.size)
-        idx = np.concatenate([members[starts[j]:ends[j]] for j in pick])
+        counts = lengths[pick]
+        first = np.repeat(starts[pick] - np.cumsum(counts) + counts, counts)
+        idx = members[first + np.arange(counts.sum())]
         samples.append(_weighted_lstsq(x[keep][idx], y[keep][idx], w[keep][idx]))
-    boot = np.cov(np.array(samples).T)
-    cov = np.where(np.diag(boot)[:, None] * np.diag(boot)[None, :]
-                   > np.diag(cov)[:, None] * np.diag(cov)[None, :], boot, cov)
+    if bootstrap > 1:
+        boot = np.cov(np.array(samples).T)
+        cov = np.where(np.diag(boot)[:, None] * np.diag(boot)[None, :]
+                       > np.diag(cov)[:, None] * np.diag(cov)[None, :], boot, cov)
     rms = {int(i): float(np.sqrt(np.mean(((y - x @ coef)[keep & (owner == i)]) ** 2)))
            for i in np.unique(owner[keep])}
     used = {int(i): int(np.sum(keep & (owner == i))) for i in np.unique(owner)}
@@ -565,9 +580,9 @@ def fit_gates(gate_maps, *, material="auto", field=None, thickness=(None, None),
     zero = [m for m in maps if abs(m["field"]) < ZERO_FIELD]
     q_est = float(np.median([m["q_map"] for m in (zero or maps)]))
     # Two passes: the traces are laid at constant D with the current ratio estimate.
-    for _ in range(2):
+    for final in (False, True):
         fit, degeneracy, scale_from, notes, use_scale, has_qh, prior_top = _analyse(
-            maps, q_est, material, thickness, permittivity, seed)
+            maps, q_est, material, thickness, permittivity, seed, 200 if final else 0)
         q_est = float(fit["coef"][0])
     warnings += notes
     coef, cov = fit["coef"], fit["cov"]
@@ -691,7 +706,7 @@ def fit_gates(gate_maps, *, material="auto", field=None, thickness=(None, None),
     return result
 
 
-def _analyse(maps, q, material, thickness, permittivity, seed):
+def _analyse(maps, q, material, thickness, permittivity, seed, bootstrap):
     """Find every map's lines with ratio q, name the fillings and fit all maps jointly."""
     for m in maps:
         if abs(m["field"]) < ZERO_FIELD:
@@ -701,7 +716,7 @@ def _analyse(maps, q, material, thickness, permittivity, seed):
     # The neutral line from zero-field maps first: it indexes the fixed-field lines.
     u0 = np.nan
     if any(m["mode"] == "neutrality" for m in maps):
-        fit0 = _joint_fit(maps, use_scale=False, seed=seed)
+        fit0 = _joint_fit(maps, use_scale=False, seed=seed, bootstrap=0)
         q, u0 = float(fit0["coef"][0]), float(fit0["coef"][1])
     prior_top = _prior_top(thickness, permittivity, q)
     degeneracy, scale_from, notes = _name_lines(maps, material, prior_top, u0)
@@ -713,7 +728,7 @@ def _analyse(maps, q, material, thickness, permittivity, seed):
             if m["mode"] == "quantum-hall":
                 m["fillings"] = None
                 m["fillings_relative"] = m["line_index"].astype(float)
-    fit = _joint_fit(maps, use_scale=use_scale, seed=seed)
+    fit = _joint_fit(maps, use_scale=use_scale, seed=seed, bootstrap=bootstrap)
     return fit, degeneracy, scale_from, notes, use_scale, has_qh, prior_top
 
 
