@@ -24,6 +24,7 @@ All quantities are SI (m^-2, m, V, T); angles in degrees where the name
 says ``_deg``.
 """
 
+import dataclasses
 from dataclasses import dataclass, field
 from fractions import Fraction
 
@@ -70,6 +71,13 @@ class SuperlatticeFinding:
     offset_lines : list of dict
         Every line found off the main fan origin, including any that did not
         fit the lattice (those are not reported as satellites).
+    main_fan_lines : list of State
+        Lines through the neutrality point that the main fan fit missed
+        (found only when that fit took a satellite family for its origin).
+    main_states_as_satellites : list of State
+        When the main fan fit's origin is a satellite family (the
+        superlattice entry ``main_fit_origin_band_filling`` is then non-zero),
+        its states relabelled as the satellites (t, s) they are.
     """
 
     superlattice: dict | None
@@ -79,6 +87,8 @@ class SuperlatticeFinding:
     notes: list = field(default_factory=list)
     seen: bool = False
     offset_lines: list = field(default_factory=list)
+    main_fan_lines: list = field(default_factory=list)
+    main_states_as_satellites: list = field(default_factory=list)
 
 
 # --- geometry ------------------------------------------------------------------
@@ -217,7 +227,7 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
 
     rng = np.random.default_rng(seed)
     superlattice = None
-    satellites = []
+    satellites, main_fan_lines, relabelled = [], [], []
     if lattice is not None:
         joint = _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng)
         superlattice = _superlattice_dict(joint, flavours, lattice_constant, lattice, fan_result,
@@ -226,12 +236,24 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
             notes.append("twist angle assumes a twisted graphene bilayer "
                          f"(lattice constant {lattice_constant * 1e9:.3f} nm)")
         satellites = _satellite_states(lines, lattice)
+        main_fan_lines = [_state_of(lines[j], "integer", None) for j in lattice["neutral"]]
+        if lattice["main_band_filling"]:
+            relabelled = [dataclasses.replace(st, kind="satellite",
+                                              band_filling=int(lattice["main_band_filling"]))
+                          for _, st in main_states if st.kind in _MAIN_KINDS]
     elif lines:
         notes.append(f"{len(lines)} line(s) off the main fan origin, but no consistent set of "
                      "band fillings: not reported as satellites")
 
     cell_density = superlattice["cell_density"] if superlattice else None
     cell_sigma = superlattice["cell_density_stderr"] if superlattice else None
+    if superlattice is not None:
+        # densities from here on are counted from neutrality as the joint fit found it
+        scale = _Scale(alpha=superlattice["density_per_volt"],
+                       v0=superlattice["zero_density_voltage"], gate_step=gate_step)
+        for line in lines:
+            line["intercept_density"] = float(scale.density(line["intercept"]))
+            line["intercept_density_stderr"] = abs(scale.alpha) * line["intercept_stderr"]
     peaks = _zero_field_peaks(gate, fields, rxx, scale, cell_density, cell_sigma, flavours,
                               lattice, lines, notes)
     horizontal = _horizontal_features(gate, fields, rxx, scale, cell_density, cell_sigma,
@@ -256,9 +278,10 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
     return SuperlatticeFinding(superlattice=superlattice, satellites=satellites,
                                zero_field_peaks=peaks, horizontal_features=horizontal,
                                notes=notes, seen=seen,
-                               offset_lines=[_line_summary(line, _jsonable_s(
-                                   lattice["assigned"][j]) if lattice and j in lattice["assigned"]
-                                   else None) for j, line in enumerate(lines)])
+                               offset_lines=[_line_summary(line, _line_band_filling(lattice, j))
+                                             for j, line in enumerate(lines)],
+                               main_fan_lines=main_fan_lines,
+                               main_states_as_satellites=relabelled)
 
 
 # --- input -------------------------------------------------------------------------
@@ -389,9 +412,10 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope):
         # a real line is resolved on most rows it crosses; crossings of other lines that
         # happen to align are sparse
         rows_spanned = np.sum((row_fields >= line["field_min"]) & (row_fields <= line["field_max"]))
-        if line["points"] < 0.6 * rows_spanned:
+        if line["points"] < 0.35 * rows_spanned:
             continue
-        if abs(line["slope_filling"] - t) > 0.3 or abs(line["intercept"] - scale.v0) < origin_tol:
+        slope_tol = max(0.1 + 0.02 * abs(t), 3 * line["slope_filling_stderr"])
+        if abs(line["slope_filling"] - t) > slope_tol or abs(line["intercept"] - scale.v0) < origin_tol:
             continue
         if line["rms"] > 0.6 * step:
             continue   # not straight: a background valley or a chain of crossings
@@ -485,54 +509,89 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes):
 
     The real-number GCD is ambiguous by integer factors; the outermost
     family is taken to be full filling, |s| = flavours, as is usual in
-    graphene moires (band insulators give the strongest satellites).  Only
-    when that fails does the plain GCD (largest n0 that fits) decide.
+    graphene moires (band insulators give the strongest satellites).  When
+    no lattice through the main fan origin has that property but the
+    families (with the main fan) form the symmetric pattern -flavours ...
+    +flavours about another point, the main fan fit took a satellite family
+    for its origin, and neutrality is that point.  Only when both fail does
+    the plain GCD (largest n0 that fits) decide.
     """
     if len(lines) < 2:
         return None
     families = _families(lines, scale)
-    outer = max(families, key=lambda f: abs(f["density"]))
-    ranked = []
-    for k in range(1, max_band_filling + 1):
-        n0 = abs(outer["density"]) / k
-        fills, ok = [], []
-        for fam in families:
-            x = fam["density"] / n0
-            # a fractional filling needs a family of two or more lines to be believed
-            s = _band_filling(x, fam["tol"] / n0, fractions=len(fam["lines"]) >= 2)
-            fills.append(s)
-            ok.append(s is not None and abs(s) <= max_band_filling)
-        ranked.append((k, n0, fills, ok))
-    # explain as many resolved points as possible; fractions count only where integers fail
-    def explained(r):
-        return sum(sum(lines[j]["points"] for j in fam["lines"]) * (1.0 if isinstance(s, int) else 0.5)
-                   for fam, s, o in zip(families, r[2], r[3]) if o and s != 0)
+    floor = 1.5 * abs(scale.alpha) * scale.gate_step
+    densities = [fam["density"] for fam in families] + [0.0]
+    outer = max(abs(d) for d in densities)
+    hypotheses = [(0.0, outer / k, k) for k in range(1, max_band_filling + 1)]
+    low, high = min(densities), max(densities)
+    if abs(0.5 * (low + high)) > floor:
+        hypotheses.append((0.5 * (low + high), (high - low) / (2 * flavours), None))
 
-    best = max(explained(r) for r in ranked)
+    evaluated = []
+    for origin, n0, k in hypotheses:
+        main_s = 0
+        if origin != 0.0:
+            main_s = _band_filling(-origin / n0, floor / n0, fractions=False)
+            if main_s is None or abs(main_s) > max_band_filling:
+                continue
+        fills, explained, sides = [], 0.0, set()
+        for fam in families:
+            # a fractional filling needs a family of two or more lines to be believed
+            s = _band_filling((fam["density"] - origin) / n0, fam["tol"] / n0,
+                              fractions=len(fam["lines"]) >= 2)
+            if s is not None and abs(s) > max_band_filling:
+                s = None
+            fills.append(s)
+            if s is not None:
+                explained += sum(lines[j]["points"] for j in fam["lines"]) * (
+                    1.0 if isinstance(s, int) else 0.5)
+                if abs(s) == flavours:
+                    sides.add(np.sign(s))
+        if abs(main_s) == flavours:
+            sides.add(np.sign(main_s))
+        evaluated.append({"origin": origin, "n0": n0, "k": k, "fills": fills,
+                          "main_s": main_s, "explained": explained, "full_sides": len(sides)})
+    through_origin = [h for h in evaluated if h["origin"] == 0.0]
+    best = max(h["explained"] for h in through_origin)
     if best <= 0:
         return None
-    pool = [r for r in ranked if explained(r) >= 0.999 * best]
-    chosen = next((r for r in pool if r[0] == flavours), None)
+    pool = [h for h in through_origin if h["explained"] >= 0.999 * best]
+    chosen = next((h for h in pool if h["k"] == flavours), None)
     if chosen is None:
-        chosen = pool[0]
-        notes.append(f"the outermost satellite family is not at |s| = {flavours} (full filling); "
-                     "n0 taken as the largest cell density that makes every intercept a "
-                     "multiple of it: check against the zero-field peaks")
-    k, n0, fills, ok = chosen
-    assigned = {}
-    for fam, s, good_fam in zip(families, fills, ok):
-        if good_fam and s != 0:
-            for j in fam["lines"]:
-                assigned[j] = s
+        shifted = [h for h in evaluated if h["origin"] != 0.0 and h["full_sides"] == 2
+                   and h["explained"] >= 0.999 * best]
+        if shifted:
+            chosen = shifted[0]
+            notes.append(f"the main fan fit's origin is the s = {chosen['main_s']:+d} satellite "
+                         "family, not charge neutrality: the band fillings are counted from the "
+                         "centre of the symmetric pattern of families, and the superlattice "
+                         "zero_density_voltage is the neutrality point")
         else:
+            chosen = pool[0]
+            notes.append(f"the outermost satellite family is not at |s| = {flavours} (full "
+                         "filling); n0 taken as the largest cell density that makes every "
+                         "intercept a multiple of it: check against the zero-field peaks")
+    assigned, neutral = {}, []
+    for fam, s in zip(families, chosen["fills"]):
+        if s is None:
             notes.append(f"line family at n = {fam['density'] * 1e-4:.3e} cm^-2 is not at a "
                          "band filling of the lattice: not reported as satellites")
+        elif s == 0:
+            neutral.extend(fam["lines"])   # lines of the true main fan, missed by its fit
+        else:
+            for j in fam["lines"]:
+                assigned[j] = s
+    if neutral:
+        notes.append(f"{len(neutral)} line(s) through the neutrality point were missed by the "
+                     "main fan fit")
     if any(not isinstance(s, int) for s in assigned.values()):
         notes.append("fractional band fillings needed to explain some intercepts")
     if len(assigned) < 2:
         return None
-    return {"cell_density_guess": n0, "assigned": assigned,
-            "band_fillings": sorted(set(assigned.values())), "families": families}
+    fillings = set(assigned.values()) | ({chosen["main_s"]} if chosen["main_s"] else set())
+    return {"cell_density_guess": chosen["n0"], "origin_density": chosen["origin"],
+            "main_band_filling": chosen["main_s"], "assigned": assigned, "neutral": neutral,
+            "band_fillings": sorted(fillings, key=float), "families": families}
 
 
 def _band_filling(x, tol, fractions=True):
@@ -558,13 +617,18 @@ def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
     """
     b, v, w = points["field"], points["gate"], points["weight"]
     groups = []   # (kind, design rows, targets, weights), one per line
+    main_s = float(lattice["main_band_filling"])
     for i, st in main_states:
         nu = _filling_number(st.filling)
         sel = points["state"] == i
         if st.kind not in _MAIN_KINDS or not nu or sel.sum() < 3:
             continue
-        X = np.column_stack([np.ones(sel.sum()), nu * b[sel] / _PHI0, np.zeros(sel.sum())])
+        X = np.column_stack([np.ones(sel.sum()), nu * b[sel] / _PHI0, np.full(sel.sum(), main_s)])
         groups.append(("main", X, v[sel], w[sel]))
+    for j in lattice["neutral"]:
+        m = lines[j]["members"]
+        X = np.column_stack([np.ones(m.size), lines[j]["t"] * b[m] / _PHI0, np.zeros(m.size)])
+        groups.append(("main", X, v[m], w[m]))
     for j, s in lattice["assigned"].items():
         m = lines[j]["members"]
         X = np.column_stack([np.ones(m.size), lines[j]["t"] * b[m] / _PHI0,
@@ -574,7 +638,7 @@ def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
     sat_idx = [i for i, g in enumerate(groups) if g[0] == "satellite"]
     joint = len(main_idx) > 0
     free = [0, 1, 2] if joint else [2]
-    fixed = np.array([scale.v0, 1.0 / scale.alpha, 0.0])
+    fixed = np.array([scale.v0 + lattice["origin_density"] / scale.alpha, 1.0 / scale.alpha, 0.0])
     A_parts = [(g[1] * g[3][:, None]).T @ g[1] for g in groups]
     y_parts = [(g[1] * g[3][:, None]).T @ g[2] for g in groups]
 
@@ -642,6 +706,7 @@ def _superlattice_dict(joint, flavours, lattice_constant, lattice, fan_result, n
     out = dict(geometry)
     out.update({
         "band_fillings": [_jsonable_s(s) for s in lattice["band_fillings"]],
+        "main_fit_origin_band_filling": int(lattice["main_band_filling"]),
         "satellite_count": len(lattice["assigned"]),
         "cell_density_fit_stderr": joint["cell_density_fit_stderr"],
         "cell_density_bootstrap_stderr": joint["cell_density_bootstrap_stderr"],
@@ -675,17 +740,17 @@ def _superlattice_dict(joint, flavours, lattice_constant, lattice, fan_result, n
 
 
 def _satellite_states(lines, lattice):
-    states = []
-    for j in sorted(lattice["assigned"], key=lambda j: (float(lattice["assigned"][j]),
-                                                         lines[j]["t"])):
-        line = lines[j]
-        states.append(State(
-            filling=str(line["t"]), kind="satellite", slope=line["slope"],
-            intercept=line["intercept"], points=line["points"], field_min=line["field_min"],
-            field_max=line["field_max"], filling_value=line["slope_filling"],
-            filling_stderr=line["slope_filling_stderr"], onset_field=line["field_min"],
-            band_filling=_jsonable_s(lattice["assigned"][j])))
-    return states
+    order = sorted(lattice["assigned"], key=lambda j: (float(lattice["assigned"][j]),
+                                                       lines[j]["t"]))
+    return [_state_of(lines[j], "satellite", _jsonable_s(lattice["assigned"][j])) for j in order]
+
+
+def _state_of(line, kind, band_filling):
+    return State(filling=str(line["t"]), kind=kind, slope=line["slope"],
+                 intercept=line["intercept"], points=line["points"], field_min=line["field_min"],
+                 field_max=line["field_max"], filling_value=line["slope_filling"],
+                 filling_stderr=line["slope_filling_stderr"], onset_field=line["field_min"],
+                 band_filling=band_filling)
 
 
 def _line_summary(line, band_filling):
@@ -695,6 +760,14 @@ def _line_summary(line, band_filling):
             "slope_filling": line["slope_filling"],
             "slope_filling_stderr": line["slope_filling_stderr"], "points": line["points"],
             "field_min": line["field_min"], "field_max": line["field_max"]}
+
+
+def _line_band_filling(lattice, j):
+    if lattice is None:
+        return None
+    if j in lattice["assigned"]:
+        return _jsonable_s(lattice["assigned"][j])
+    return 0 if j in lattice["neutral"] else None
 
 
 def _jsonable_s(s):
@@ -740,7 +813,7 @@ def _zero_field_peaks(gate, fields, rxx, scale, n0, n0_sigma, flavours, lattice,
     family_density = {}
     if lattice is not None:
         for j, s in lattice["assigned"].items():
-            family_density.setdefault(s, []).append(lines[j]["intercept_density"])
+            family_density.setdefault(s, []).append(float(scale.density(lines[j]["intercept"])))
     peaks = []
     for p, prom, width in zip(idx, props["prominences"], widths):
         centre = g[p] + _parabolic_offset(smooth, p) * step
