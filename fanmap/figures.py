@@ -620,9 +620,10 @@ def _safe_weights(weight):
 def index_plot_data(crosschecks):
     """The Landau index plot inside a cross-check dict, or None.
 
-    Accepts ``crosschecks["index_plot"]`` as a dict with arrays
-    ``inverse_field`` (1/T) and ``index`` (N), and optionally ``slope`` (T,
-    the oscillation frequency), ``intercept`` and ``intercept_stderr``.
+    Reads ``crosschecks["index_plot"]`` as written by
+    :func:`fanmap.crosscheck.landau_index_plot`: arrays ``inverse_field``
+    (1/T) and ``index`` (N), the oscillation ``frequency`` B_F (T) and the
+    offset ``intercept`` = γ with ``intercept_stderr``, for N = B_F/B − γ.
     """
     if not crosschecks:
         return None
@@ -633,7 +634,8 @@ def index_plot_data(crosschecks):
     y = np.asarray(data.get("index", []), dtype=float)
     if x.size == 0 or x.size != y.size:
         return None
-    return {"inverse_field": x, "index": y, "slope": data.get("slope"),
+    return {"inverse_field": x, "index": y, "frequency": data.get("frequency"),
+            "gate": data.get("gate"),
             "intercept": data.get("intercept", crosschecks.get("index_plot_intercept")),
             "intercept_stderr": data.get("intercept_stderr",
                                          crosschecks.get("index_plot_intercept_stderr"))}
@@ -642,7 +644,7 @@ def index_plot_data(crosschecks):
 def plot_index_plot(result):
     """Landau index N versus 1/B of the oscillation minima, with its straight-line fit.
 
-    The intercept at 1/B = 0 is the Berry-phase offset γ: ½ for Berry phase π,
+    The fit N = B_F/B − γ meets the N axis at −γ: γ = ½ for Berry phase π,
     0 for 0 or 2π (standard result; e.g. Zhang et al., Nature 438, 201 (2005)).
     """
     data = index_plot_data(result.crosschecks)
@@ -654,15 +656,16 @@ def plot_index_plot(result):
         ax = fig.add_subplot()
         style = _style.SERIES_STYLES[0]
         ax.plot(x, y, linestyle="none", markersize=5, label="minima", **style)
-        slope, intercept = data["slope"], data["intercept"]
-        if slope is not None and intercept is not None and np.isfinite([slope, intercept]).all():
+        frequency, gamma = data["frequency"], data["intercept"]
+        if frequency is not None and gamma is not None and np.isfinite([frequency, gamma]).all():
             xs = np.linspace(0, x.max() * 1.05, 50)
             err = data["intercept_stderr"]
             err_text = f" ± {err:.2g}" if err is not None and np.isfinite(err) else ""
-            ax.plot(xs, intercept + slope * xs, color=_style.SERIES_STYLES[1]["color"],
+            ax.plot(xs, frequency * xs - gamma, color=_style.SERIES_STYLES[1]["color"],
                     linestyle="--", linewidth=1.2,
-                    label=_text_minus(f"fit: intercept {intercept:.3f}{err_text}"))
-        for ref, text in ((0.5, "γ = ½ (Berry phase π)"), (0.0, "γ = 0 (0 or 2π)")):
+                    label=_text_minus(f"N = B_F/B − γ: B_F = {frequency:.4g} T, "
+                                      f"γ = {gamma:.3f}{err_text}"))
+        for ref, text in ((-0.5, "γ = ½ (Berry phase π)"), (0.0, "γ = 0 (Berry phase 0 or 2π)")):
             ax.axhline(ref, color="#999999", linewidth=0.6, linestyle=":")
             ax.text(x.max() * 1.04, ref, text, ha="right", va="bottom",
                     fontsize=_style.FONT_SIZE - 2, color="#555555")
@@ -670,7 +673,8 @@ def plot_index_plot(result):
         ax.set_xlabel("1/B (1/T)")
         ax.set_ylabel("Landau index N")
         ax.legend(loc="upper left")
-        fig.suptitle("Landau index plot", fontsize=_style.FONT_SIZE + 1)
+        where = f" at $V_g$ = {data['gate']:.4g} V" if _is_number(data["gate"]) else ""
+        fig.suptitle(_text_minus(f"Landau index plot{where}"), fontsize=_style.FONT_SIZE + 1)
     return fig
 
 
@@ -819,6 +823,13 @@ def _missing_text(row):
     if str(row.get("status", "")).lower() == "failed" or row.get("error"):
         return "failed"
     return "no fit"
+
+
+def _is_number(value):
+    try:
+        return math.isfinite(float(value))
+    except (TypeError, ValueError):
+        return False
 
 
 def _as_float(value):

@@ -65,9 +65,10 @@ def synthetic_result(alpha=ALPHA, v0=V0, with_points=True, extra_states=True, se
         berry_phase=1, scale_from="material sequence (graphene-monolayer preset)",
         states=states, capacitance_per_area_stderr=0.004 * alpha * 1.602176634e-19,
         warnings=["state 7/3 rests on 8 points only"], material="graphene-monolayer",
-        crosschecks={"index_plot": {"inverse_field": 1 / np.linspace(2, 9, 8),
-                                    "index": np.arange(8) * 0.0 + 0.5 + np.arange(8),
-                                    "slope": 1.0, "intercept": 0.5, "intercept_stderr": 0.03},
+        # Index plot as fanmap.crosscheck writes it: N = B_F / B - gamma, B_F = 10 T, gamma = 1/2.
+        crosschecks={"index_plot": {"inverse_field": (np.arange(8) + 0.5) / 10.0,
+                                    "index": np.arange(8), "gate": 12.0,
+                                    "frequency": 10.0, "intercept": 0.5, "intercept_stderr": 0.03},
                      "hall_density_per_volt": 0.99 * alpha,
                      "hall_density_per_volt_stderr": 0.01 * alpha},
         source="demo-device-A.nc", version="0.1.0", ridge_points=ridge,

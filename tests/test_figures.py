@@ -149,7 +149,10 @@ def test_index_plot_draws_the_fitted_line():
     fig = F.plot_index_plot(synthetic_result())
     ax = fig.axes[0]
     fit = [l for l in ax.get_lines() if l.get_linestyle() == "--"]
-    assert fit and fit[0].get_ydata()[0] == pytest.approx(0.5)      # intercept at 1/B = 0
+    # N = B_F/B - gamma meets the N axis at -gamma = -1/2 (Berry phase pi; Zhang et al. 2005).
+    assert fit and fit[0].get_ydata()[0] == pytest.approx(-0.5)
+    points = [l for l in ax.get_lines() if l.get_marker() == "o"][0]
+    assert np.allclose(10.0 * points.get_xdata() - 0.5, points.get_ydata())
     result = synthetic_result()
     result.crosschecks = {"hall_density_per_volt": 1.0}
     assert F.index_plot_data(result.crosschecks) is None
