@@ -118,9 +118,14 @@ def open_map(path, *, signal=None, hall=None, gate=None, field=None, top_gate=No
                    signal_units=signal_units, hall_units=hall_units, units=dict(units or {}),
                    excitation_current=excitation_current, field_value=field_value, kind=kind)
     ctx = _Context(str(path), options)
-    raw, notes, fmt = read_raw(path, format=format, lazy=lazy)
-    ctx.note(f"format: {fmt}" + (f" ({'; '.join(notes)})" if notes else ""))
-    ds = _interpret(raw, ctx)
+    try:
+        raw, notes, fmt = read_raw(path, format=format, lazy=lazy)
+        ctx.note(f"format: {fmt}" + (f" ({'; '.join(notes)})" if notes else ""))
+        ds = _interpret(raw, ctx)
+    except InputError as exc:
+        if str(path) in str(exc):
+            raise
+        raise InputError(f"{path}: {exc}") from None
     ds.attrs["source"] = str(path)
     ds.attrs["recognised"] = "\n".join(ctx.recognised)
     return ds
