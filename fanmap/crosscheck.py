@@ -946,17 +946,24 @@ def _pick_index_gates(gates, frequency, count):
 
 
 def _weighted_mean(values, errors):
+    """Mean of estimates that may scatter beyond their errors (random-effects combination).
+
+    The between-estimate variance tau^2 (DerSimonian & Laird, Control. Clin. Trials 7,
+    177 (1986)) is added to every error before weighting, so that one estimate with an
+    over-small error cannot dominate a scattered set.
+    """
     values, errors = np.asarray(values, float), np.asarray(errors, float)
     ok = np.isfinite(values) & np.isfinite(errors) & (errors > 0)
     if not ok.any():
         return float("nan"), float("nan")
-    w = 1.0 / errors[ok] ** 2
-    mean = float(np.sum(w * values[ok]) / np.sum(w))
-    stderr = float(np.sqrt(1.0 / np.sum(w)))
-    if ok.sum() > 1:
-        chi2 = float(np.sum(w * (values[ok] - mean) ** 2) / (ok.sum() - 1))
-        stderr *= max(1.0, math.sqrt(chi2))
-    return mean, stderr
+    v, s2 = values[ok], errors[ok] ** 2
+    w = 1.0 / s2
+    mean = np.sum(w * v) / np.sum(w)
+    q = np.sum(w * (v - mean) ** 2)
+    tau2 = max(0.0, (q - (v.size - 1)) / (np.sum(w) - np.sum(w**2) / np.sum(w))) if v.size > 1 else 0.0
+    w = 1.0 / (s2 + tau2)
+    mean = float(np.sum(w * v) / np.sum(w))
+    return mean, float(np.sqrt(1.0 / np.sum(w)))
 
 
 def run_crosschecks(fan_map, fan_result=None, *, degeneracy=None, material="auto",
