@@ -13,7 +13,7 @@ from . import __version__
 from .errors import FanmapError
 
 #: Sub-command modules, in the order ``fanmap --help`` lists them.
-COMMANDS = ("show", "fit", "gates", "check", "batch")
+COMMANDS = ("simulate", "show", "fit", "gates", "check", "batch")
 
 
 def build_parser():
