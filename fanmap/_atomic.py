@@ -30,10 +30,18 @@ def atomic_path(target, suffix=None):
     tmp = Path(tmp)
     try:
         yield tmp
+        # mkstemp creates files readable by the owner only; give the usual umask permissions.
+        os.chmod(tmp, 0o666 & ~_current_umask())
         os.replace(tmp, target)
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
+
+
+def _current_umask():
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def write_bytes_atomic(target, data):
