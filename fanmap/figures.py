@@ -42,7 +42,7 @@ from .physics import VACUUM_PERMITTIVITY, filling_from_density
 __all__ = [
     "state_label", "colour_scale", "plot_fan", "plot_filling_map", "plot_density_map",
     "plot_residuals", "plot_index_plot", "index_plot_data", "plot_gate_maps", "plot_nd_map",
-    "plot_batch_summary", "state_residuals", "DENSITY_UNIT",
+    "plot_batch_summary", "state_residuals", "value_with_error", "DENSITY_UNIT",
 ]
 
 #: Densities on figure axes are in units of 10^12 cm^-2 = 10^16 m^-2.
@@ -383,15 +383,28 @@ def _fan_title(fan_map, result):
     if source:
         parts.append(str(source).rsplit("/", 1)[-1])
     if math.isfinite(alpha):
-        err = result.density_per_volt_stderr
-        err_text = f" ± {err / 1e14:.2g}" if math.isfinite(err) else ""
-        parts.append(f"α = {alpha / 1e14:.4g}{err_text} ×10¹⁰ cm⁻² V⁻¹")
+        parts.append(f"α = ({value_with_error(alpha / 1e14, result.density_per_volt_stderr / 1e14)})"
+                     " ×10¹⁰ cm⁻² V⁻¹")
     v0 = result.zero_density_voltage
     if math.isfinite(v0):
-        err = result.zero_density_voltage_stderr
-        parts.append(_text_minus(f"V0 = {v0:.4g}" + (f" ± {err:.2g}" if math.isfinite(err) else "")
-                                 + " V"))
+        parts.append(f"V₀ = ({value_with_error(v0, result.zero_density_voltage_stderr)}) V")
     return "   ".join(parts)
+
+
+def value_with_error(value, error):
+    """``value ± error`` with the error to two significant digits and the value to match.
+
+    Examples
+    --------
+    >>> value_with_error(7.562491, 3.0e-5)
+    '7.562491 ± 0.000030'
+    >>> value_with_error(-1.23456, float("nan"))
+    '−1.235'
+    """
+    if not (math.isfinite(error) and error > 0):
+        return _text_minus(f"{value:.4g}")
+    decimals = min(max(0, 1 - math.floor(math.log10(error))), 10)
+    return _text_minus(f"{value:.{decimals}f} ± {error:.{decimals}f}")
 
 
 def _mark_zero_density(ax, result, gate_lo, gate_hi, field_lo):
@@ -464,18 +477,26 @@ def plot_filling_map(fan_map, result, *, signal=None, scale="auto", max_filling=
         ax.set_facecolor("#e9e9e9")
         curves, texts, kinds = [], [], []
         b_top = float(field_kept.max())
+        gate_lo, gate_hi = float(gate.min()), float(gate.max())
         for state in result.states:
             style = _style.kind_style(state.kind)
             b_fit = _field_samples(max(state.field_min, 1e-3), state.field_max, 50)
             b_ext = _field_samples(max(float(positive.min()) if positive.size else 1e-3, 1e-3),
-                                   b_top)
+                                   b_top, 400)
+            # Extend a line only where the map has data (its gate value inside the window).
+            v_ext = _state_gate(state, b_ext)
+            b_ext = b_ext[(v_ext >= gate_lo) & (v_ext <= gate_hi)]
             nu_fit = filling_from_density(_density(_state_gate(state, b_fit), result), b_fit)
             nu_ext = filling_from_density(_density(_state_gate(state, b_ext), result), b_ext)
             _draw_state_line(ax, nu_fit, b_fit, nu_ext, b_ext, style)
-            curves.append((nu_ext, b_ext))
-            texts.append(state_label(state))
-            kinds.append(state.kind)
-        _label_lines(fig, ax, curves, texts, kinds)
+            inside = (nu_ext >= nu_lo) & (nu_ext <= nu_hi)
+            if inside.any():
+                # Every label goes above the top edge: the lines are vertical here.
+                curves.append(nu_ext[np.flatnonzero(inside)[-1]])
+                texts.append(state_label(state))
+                kinds.append(state.kind)
+        if curves:
+            _place_top_labels(fig, ax, np.asarray(curves), texts, kinds)
         _kind_legend(ax, kinds)
         fig.suptitle("map against filling factor (fitted calibration)",
                      fontsize=_style.FONT_SIZE + 1)
@@ -607,7 +628,7 @@ def plot_residuals(result, *, gate_step=None, max_columns=4):
                 ax.xaxis.set_tick_params(labelbottom=True)
         unassigned = int(np.sum(np.asarray(result.ridge_points["state"]) < 0))
         band = (f"; shaded: ± half a gate step ({500 * gate_step:.3g} mV)" if gate_step else "")
-        fig.suptitle(f"gate-voltage residuals of each fitted line ({unassigned} ridge points "
+        fig.suptitle(f"gate-voltage residuals of each fitted line\n({unassigned} ridge points "
                      f"not assigned to any state{band})", fontsize=_style.FONT_SIZE + 1)
     return fig
 

@@ -104,13 +104,35 @@ def _fan_figures(fan_map, result, notes):
 
 # --- warnings derived from the data and the fit ---------------------------------
 
+def _line_stats(field, resid, weight):
+    """Weighted rms residual and the quadratic bow (with its significance) of one line."""
+    w = np.where(np.isfinite(weight) & (weight > 0), weight, 0.0)
+    if w.sum() == 0:
+        w = np.ones_like(resid)
+    rms = float(np.sqrt(np.average(resid**2, weights=w)))
+    b = np.abs(field)
+    if resid.size < 6 or np.ptp(b) == 0:
+        return rms, 0.0, 0.0
+    centre = (b - b.mean()) / np.ptp(b)
+    design = np.stack([np.ones_like(centre), centre, centre**2], axis=1)
+    sw = np.sqrt(w)
+    coeff, *_ = np.linalg.lstsq(design * sw[:, None], resid * sw, rcond=None)
+    sigma2 = float(np.sum(w * (resid - design @ coeff) ** 2) / max(resid.size - 3, 1))
+    try:
+        err = math.sqrt(max(sigma2 * np.linalg.inv((design * w[:, None]).T @ design)[2, 2], 0.0))
+    except np.linalg.LinAlgError:
+        return rms, 0.0, 0.0
+    # A parabola c t^2 on t in [-1/2, 1/2] departs from its chord by c/4 (the sagitta).
+    return rms, abs(coeff[2]) / 4, abs(coeff[2]) / err if err > 0 else 0.0
+
+
 def fan_warnings(fan_map, result):
     """Warnings the report adds to the fitter's own: missing data, poor fits, bent lines.
 
     A line counts as poorly fitted when its weighted rms residual exceeds two
-    gate steps, and as bent when a quadratic term in field is significant at
-    four standard errors and moves the line by more than half a gate step
-    over its field range.
+    gate steps or six times the median rms of all lines; as bent when a
+    quadratic term in field is significant at five standard errors and bows
+    the line by more than twice the median rms (and a tenth of a gate step).
 
     Examples
     --------
@@ -129,37 +151,24 @@ def fan_warnings(fan_map, result):
             found.append(f"missing data: {100 * missing / values.size:.0f}% of the R_xx map is "
                          f"NaN ({missing} of {values.size} points)")
     step = _gate_step(fan_map) if S.GATE in fan_map.coords else None
-    if result.ridge_points is None:
+    if result.ridge_points is None or not step:
         return found
-    for state, (field, resid, weight) in zip(result.states, F.state_residuals(result)):
-        if resid.size < 4 or not step:
-            continue
+    stats = [(state, _line_stats(*r)) for state, r in zip(result.states, F.state_residuals(result))
+             if r[1].size >= 4]
+    if not stats:
+        return found
+    typical = float(np.median([rms for _, (rms, _, _) in stats]))
+    for state, (rms, bow, significance) in stats:
         label = F.state_label(state)
-        w = np.where(np.isfinite(weight) & (weight > 0), weight, 0.0)
-        if w.sum() == 0:
-            w = np.ones_like(resid)
-        rms = float(np.sqrt(np.average(resid**2, weights=w)))
-        if rms > 2 * step:
-            found.append(f"poor fit: line ν = {label} has rms residual {rms * 1e3:.3g} mV, more "
-                         f"than two gate steps ({2e3 * step:.3g} mV)")
-        b = np.abs(field)
-        if resid.size >= 6 and np.ptp(b) > 0:
-            centre = (b - b.mean()) / np.ptp(b)
-            design = np.stack([np.ones_like(centre), centre, centre**2], axis=1)
-            sw = np.sqrt(w)
-            coeff, *_ = np.linalg.lstsq(design * sw[:, None], resid * sw, rcond=None)
-            dof = max(resid.size - 3, 1)
-            sigma2 = float(np.sum(w * (resid - design @ coeff) ** 2) / dof)
-            try:
-                cov = sigma2 * np.linalg.inv((design * w[:, None]).T @ design)
-            except np.linalg.LinAlgError:
-                continue
-            err = math.sqrt(max(cov[2, 2], 0.0))
-            bow = abs(coeff[2]) * 0.25   # deviation at the ends of the range relative to a chord
-            if err > 0 and abs(coeff[2]) > 4 * err and bow > 0.5 * step:
-                found.append(f"bent line: ν = {label} curves by about {bow * 1e3:.2g} mV over "
-                             f"{b.min():.3g}–{b.max():.3g} T ({abs(coeff[2]) / err:.0f} σ); a "
-                             "drifting V0 or quantum capacitance can cause this")
+        if rms > 2 * step or (len(stats) >= 3 and rms > 6 * typical):
+            found.append(f"poor fit: line ν = {label} scatters {rms * 1e3:.3g} mV rms about its fit "
+                         f"({rms / typical:.0f} times the typical line's {typical * 1e3:.2g} mV; "
+                         f"gate step {step * 1e3:.3g} mV)")
+        if significance > 5 and bow > max(2 * typical, 0.1 * step):
+            found.append(f"bent line: ν = {label} departs from a straight line by about "
+                         f"{bow * 1e3:.2g} mV over {state.field_min:.3g}–{state.field_max:.3g} T "
+                         f"({significance:.0f} σ); a drifting V0, quantum capacitance or a "
+                         "neighbouring peak can cause this: see the residuals figure")
     return found
 
 
