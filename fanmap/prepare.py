@@ -352,19 +352,33 @@ def direction_shift(ds, *, variable=S.RXX, max_shift=None):
     step = _step(gate)
     max_lag = int(round((max_shift / step) if max_shift else max(2, gate.size // 8)))
     max_lag = max(1, min(max_lag, gate.size // 2))
-    up_field = up[S.FIELD].values
-    tol = 2 * _field_tolerance(ds[S.FIELD].values) + 1e-12
+    up_field = up[S.FIELD].values.astype(float)
+    up_rows = [_normalised_derivative(r) for r in np.asarray(up[variable].values, dtype=float)]
+    field_step = _step(np.unique(ds[S.FIELD].values))
+    tol = _field_tolerance(ds[S.FIELD].values)
     lags = []
-    for i, b in enumerate(down[S.FIELD].values):
-        j = int(np.argmin(np.abs(up_field - b)))
-        if abs(up_field[j] - b) > max(tol, 0.6 * _step(np.unique(ds[S.FIELD].values))):
-            continue
-        a = _normalised_derivative(up[variable].values[j])
+    for i, b in enumerate(down[S.FIELD].values.astype(float)):
         c = _normalised_derivative(down[variable].values[i])
-        if a is None or c is None:
+        if c is None:
             continue
-        lag, _ = _row_lag(a, c, max_lag)
-        lags.append(lag)
+        exact = np.flatnonzero(np.abs(up_field - b) <= tol)
+        if exact.size and up_rows[exact[0]] is not None:
+            lags.append(_row_lag(up_rows[exact[0]], c, max_lag)[0])
+            continue
+        # no up sweep at this field: interpolate the lags to the two up sweeps that bracket it,
+        # which cancels the motion of the fan lines with field to first order
+        below = np.flatnonzero((up_field < b) & (up_field > b - 2.5 * field_step))
+        above = np.flatnonzero((up_field > b) & (up_field < b + 2.5 * field_step))
+        if not below.size or not above.size:
+            continue
+        lo = below[np.argmax(up_field[below])]
+        hi = above[np.argmin(up_field[above])]
+        if up_rows[lo] is None or up_rows[hi] is None:
+            continue
+        lag_lo = _row_lag(up_rows[lo], c, max_lag)[0]
+        lag_hi = _row_lag(up_rows[hi], c, max_lag)[0]
+        w = (b - up_field[lo]) / (up_field[hi] - up_field[lo])
+        lags.append(lag_lo + w * (lag_hi - lag_lo))
     if not lags:
         raise InputError("no up and down sweeps at matching fields to compare")
     lags = np.asarray(lags) * step
@@ -543,39 +557,63 @@ def _fill_nan_rows(x):
     return filled
 
 
-def despike(ds, *, window=5, threshold=8.0, variables=None):
-    """Replace isolated spikes by the local median; returns ``(ds, notes)`` with counts.
+def despike(ds, *, window=5, threshold=8.0, isolation=3.0, variables=None):
+    """Replace isolated spikes by the mean of their neighbours; returns ``(ds, notes)`` with counts.
 
-    A point is a spike when it stands out from the running median (``window``
-    points) both along the gate sweep and across neighbouring field rows by
-    more than ``threshold`` robust standard deviations (1.4826 * MAD), with
-    the same sign.  Real features are lines that continue from row to row;
-    single-pixel glitches are not.
+    A point is a spike when it stands out from the running median of its gate
+    sweep (``window`` points) by more than ``threshold`` times the sweep's
+    noise (robust, from second differences: 1.4826 * MAD / sqrt(1.5)), and by
+    ``isolation`` times more
+    than anything within two gate points in the neighbouring field rows.
+    Real features are lines that continue from row to row; glitches are not.
+
+    Examples
+    --------
+    >>> import numpy as np, xarray as xr
+    >>> x = 100 + np.random.default_rng(1).normal(size=(5, 40))
+    >>> x[2, 17] = 900.0
+    >>> fan = xr.Dataset({"rxx": (("field", "gate"), x)}, coords={"field": np.arange(5.0), "gate": np.arange(40.0)})
+    >>> out, notes = despike(fan)
+    >>> notes["rxx"], bool(abs(float(out.rxx[2, 17]) - 100) < 5)
+    (1, True)
     """
     variables = variables or _signals(ds)
     row_dim, col_dim = ds[S.RXX].dims
     out = ds.copy()
     notes = {}
+    footprint = np.ones((3, 5), dtype=bool)
+    footprint[1] = False  # compare with the rows above and below only
     for n in variables:
         x = np.asarray(ds[n].values, dtype=float)
         finite = np.isfinite(x)
-        filled = _fill_nan_rows(x)
-        med_g = ndimage.median_filter(filled, size=(1, window), mode="nearest")
-        res_g = filled - med_g
-        scale_g = 1.4826 * np.median(np.abs(res_g[finite])) if finite.any() else 0.0
-        flagged = np.abs(res_g) > threshold * scale_g if scale_g > 0 else np.zeros_like(finite)
-        if x.shape[0] >= window:
-            med_f = ndimage.median_filter(filled, size=(window, 1), mode="nearest")
-            res_f = filled - med_f
-            scale_f = 1.4826 * np.median(np.abs(res_f[finite]))
-            if scale_f > 0:
-                flagged &= (np.abs(res_f) > threshold * scale_f) & (np.sign(res_f) == np.sign(res_g))
-        flagged &= finite
-        count = int(flagged.sum())
+        cleaned = _fill_nan_rows(x)
+        # noise of each sweep from second differences (a smooth trend barely contributes)
+        d2 = np.full_like(cleaned, np.nan)
+        d2[:, 1:-1] = cleaned[:, 1:-1] - 0.5 * (cleaned[:, :-2] + cleaned[:, 2:])
+        d2[~finite] = np.nan
+        with _quiet():
+            scale = 1.4826 * np.nanmedian(np.abs(d2), axis=1, keepdims=True) / np.sqrt(1.5)
+            floor = 1e-9 * np.nanmedian(np.abs(np.where(finite, x, np.nan)), axis=1, keepdims=True)
+        scale = np.fmax(np.nan_to_num(scale), np.nan_to_num(floor))
+        count = 0
+        # a spike also drags the running median of its neighbours: remove the largest first, repeat
+        for _ in range(3):
+            med = ndimage.median_filter(cleaned, size=(1, window), mode="nearest")
+            res = np.abs(cleaned - med)
+            neighbours = ndimage.maximum_filter(res, footprint=footprint, mode="constant", cval=0.0)
+            peak = res >= ndimage.maximum_filter(res, size=(1, window), mode="nearest")
+            flagged = finite & peak & (res > threshold * scale) & (res > isolation * neighbours) \
+                & (scale > 0)
+            if x.shape[0] < 2 or not flagged.any():
+                break
+            count += int(flagged.sum())
+            # replace by the mean of the two neighbours (exact on a linear trend), at the ends the median
+            between = med.copy()
+            between[:, 1:-1] = 0.5 * (cleaned[:, :-2] + cleaned[:, 2:])
+            cleaned = np.where(flagged, between, cleaned)
         notes[n] = count
         if count:
-            cleaned = np.where(flagged, med_g, x)
-            out[n] = ((row_dim, col_dim), cleaned, ds[n].attrs)
+            out[n] = ((row_dim, col_dim), np.where(finite, cleaned, np.nan), ds[n].attrs)
     return out, notes
 
 
