@@ -557,15 +557,17 @@ def _fill_nan_rows(x):
     return filled
 
 
-def despike(ds, *, window=5, threshold=8.0, isolation=3.0, variables=None):
-    """Replace isolated spikes by the mean of their neighbours; returns ``(ds, notes)`` with counts.
+def despike(ds, *, threshold=8.0, isolation=3.0, variables=None):
+    """Replace single-point spikes by the mean of their two neighbours; returns ``(ds, notes)``.
 
-    A point is a spike when it stands out from the running median of its gate
-    sweep (``window`` points) by more than ``threshold`` times the sweep's
-    noise (robust, from second differences: 1.4826 * MAD / sqrt(1.5)), and by
-    ``isolation`` times more
-    than anything within two gate points in the neighbouring field rows.
-    Real features are lines that continue from row to row; glitches are not.
+    A point is a spike when it jumps away from both neighbours in its gate
+    sweep by the same sign and by more than ``threshold`` times the sweep's
+    noise (robust, from second differences: 1.4826 * MAD / sqrt(1.5)), while
+    the neighbours agree with each other (the jump is not a steep slope or a
+    sharp but resolved peak), and the jump is ``isolation`` times larger than
+    anything within two gate points in the neighbouring field rows: real
+    features are lines that continue from row to row, glitches are not.
+    ``notes`` counts the replaced points per variable.
 
     Examples
     --------
@@ -587,7 +589,6 @@ def despike(ds, *, window=5, threshold=8.0, isolation=3.0, variables=None):
         x = np.asarray(ds[n].values, dtype=float)
         finite = np.isfinite(x)
         cleaned = _fill_nan_rows(x)
-        # noise of each sweep from second differences (a smooth trend barely contributes)
         d2 = np.full_like(cleaned, np.nan)
         d2[:, 1:-1] = cleaned[:, 1:-1] - 0.5 * (cleaned[:, :-2] + cleaned[:, 2:])
         d2[~finite] = np.nan
@@ -596,19 +597,22 @@ def despike(ds, *, window=5, threshold=8.0, isolation=3.0, variables=None):
             floor = 1e-9 * np.nanmedian(np.abs(np.where(finite, x, np.nan)), axis=1, keepdims=True)
         scale = np.fmax(np.nan_to_num(scale), np.nan_to_num(floor))
         count = 0
-        # a spike also drags the running median of its neighbours: remove the largest first, repeat
-        for _ in range(3):
-            med = ndimage.median_filter(cleaned, size=(1, window), mode="nearest")
-            res = np.abs(cleaned - med)
-            neighbours = ndimage.maximum_filter(res, footprint=footprint, mode="constant", cval=0.0)
-            peak = res >= ndimage.maximum_filter(res, size=(1, window), mode="nearest")
-            flagged = finite & peak & (res > threshold * scale) & (res > isolation * neighbours) \
-                & (scale > 0)
+        for _ in range(3):  # neighbouring spikes hide each other: repeat after each removal
+            left = np.zeros_like(cleaned)
+            right = np.zeros_like(cleaned)
+            left[:, 1:-1] = cleaned[:, 1:-1] - cleaned[:, :-2]
+            right[:, 1:-1] = cleaned[:, 1:-1] - cleaned[:, 2:]
+            jump = np.where(np.sign(left) == np.sign(right), np.minimum(np.abs(left), np.abs(right)), 0.0)
+            asym = np.zeros_like(cleaned)
+            asym[:, 1:-1] = np.abs(cleaned[:, :-2] - cleaned[:, 2:])
+            neighbours = ndimage.maximum_filter(jump, footprint=footprint, mode="constant", cval=0.0)
+            flagged = finite & (jump > threshold * scale) & (asym < 0.5 * jump) \
+                & (jump > isolation * neighbours) & (scale > 0)
+            flagged[:, 1:-1] &= finite[:, :-2] & finite[:, 2:]
             if x.shape[0] < 2 or not flagged.any():
                 break
             count += int(flagged.sum())
-            # replace by the mean of the two neighbours (exact on a linear trend), at the ends the median
-            between = med.copy()
+            between = cleaned.copy()
             between[:, 1:-1] = 0.5 * (cleaned[:, :-2] + cleaned[:, 2:])
             cleaned = np.where(flagged, between, cleaned)
         notes[n] = count
