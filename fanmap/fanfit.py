@@ -103,12 +103,17 @@ def _wls(X, y, w, robust=True, iterations=4):
 
 
 def _nuisance_columns(rows, n_rows, direction, use_drift, use_hysteresis):
+    """Columns of the origin's nuisance terms: V0(row) = V0 + drift r/(R-1) + shift [down sweep].
+
+    V0 is therefore the origin of the first row (in acquisition order) swept up; ``drift``
+    is its change over the whole map and ``shift`` the hysteresis of the down sweeps.
+    """
     cols, names = [], []
     if use_drift:
-        cols.append((rows - (n_rows - 1) / 2) / max(n_rows - 1, 1))
+        cols.append(rows / max(n_rows - 1, 1))
         names.append("drift")
     if use_hysteresis:
-        cols.append(0.5 * direction[rows])
+        cols.append((direction[rows] < 0).astype(float))
         names.append("hysteresis")
     return cols, names
 
@@ -163,6 +168,15 @@ def _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance
         & (observed >= expected + 4 * np.sqrt(expected))
 
 
+def _merge_close(slopes, distance):
+    """Drop vote peaks within ``distance`` of a stronger one (``slopes`` strongest first)."""
+    kept = []
+    for s in slopes:
+        if all(abs(s - k) > distance for k in kept):
+            kept.append(s)
+    return np.asarray(kept)
+
+
 def _free_fit(m, line, slopes_n, origin_cols, names):
     """Joint fit V = V0 + nuisance + s_j B with one free slope per line."""
     sel = line >= 0
@@ -180,11 +194,9 @@ def _free_fit(m, line, slopes_n, origin_cols, names):
 def _origin_of_rows(origin, names, n_rows, direction):
     rows = np.arange(n_rows)
     value = np.full(n_rows, origin[0])
-    for coef, name in zip(origin[1:], names[1:]):
-        if name == "drift":
-            value = value + coef * (rows - (n_rows - 1) / 2) / max(n_rows - 1, 1)
-        elif name == "hysteresis":
-            value = value + coef * 0.5 * direction
+    for coef, col in zip(origin[1:], _nuisance_columns(rows, n_rows, direction, "drift" in names,
+                                                       "hysteresis" in names)[0]):
+        value = value + coef * col
     return value
 
 
@@ -263,6 +275,7 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     slopes = vote_slopes((minima.gate - v0) / minima.field, votes, bin_width, min_votes)
     # Lines of (nearly) zero slope stay at V0 at every field: the neutrality ridge, not a state.
     slopes = slopes[np.abs(slopes) * b_abs.max() > 3 * step]
+    slopes = _merge_close(slopes, 3 * step / b_abs.max())
     if slopes.size < 2:
         raise NoFanError("fewer than two lines through a common origin were found; the map "
                          "shows no Landau fan (or too few resolved states to fit one)")
@@ -333,7 +346,12 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     if dielectric is not None:
         thickness, permittivity = dielectric
         prior = float(lever_arm_from_dielectric(thickness, permittivity))
-    naming = name_lines(slopes, free["slopes_stderr"], onsets, weights=counts,
+    # The main sequence is the one that survives to the lowest fields: a line much weaker
+    # than a neighbour where the two first appear together is a split-off (broken-symmetry,
+    # fractional) state, not part of it.
+    main_weight = ((~_subordinate_lines(minima, line, slopes, onsets, origin_rows, gate))
+                   & (onsets <= 3 * onsets.min())).astype(float)
+    naming = name_lines(slopes, free["slopes_stderr"], onsets, weights=main_weight,
                         hall_fillings=hall, material=material, lever_arm_prior=prior)
     warnings += naming.warnings
 
@@ -418,6 +436,48 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     if superlattice and material in ("moire-graphene", "auto"):
         _add_superlattice(fan_map, result, preset)
     return result
+
+
+def _subordinate_lines(minima, line, slopes, onsets, origin_rows, gate, rows_compared=10,
+                       ratio=0.5):
+    """Lines that a neighbouring line outlives or outshines at low field.
+
+    For every pair of lines adjacent in slope: a line is *late* if its neighbour has
+    minima in five or more rows below half its onset field where the line itself would lie
+    inside the gate window; it is *weak* if, over the ``rows_compared`` lowest-field rows
+    holding both, its median prominence is below ``ratio`` times the neighbour's.
+    Late or weak lines are split-off states (broken-symmetry, fractional), not part of the
+    main sequence.
+    """
+    order = np.argsort(slopes)
+    step = float(np.median(np.diff(gate)))
+    strength = []
+    for j in range(slopes.size):
+        pts = np.flatnonzero(line == j)
+        strength.append(dict(zip(minima.row[pts], minima.prominence[pts])))
+    field_of_row = dict(zip(minima.row, minima.field))
+    weak = np.zeros(slopes.size, bool)
+
+    def late(a, b):
+        rows = np.array([r for r in strength[b] if field_of_row[r] < 0.5 * onsets[a]], int)
+        if rows.size < 5:
+            return False
+        where = origin_rows[rows] + slopes[a] * np.array([field_of_row[r] for r in rows])
+        return int(np.sum((where > gate[0] + 3 * step) & (where < gate[-1] - 3 * step))) >= 5
+
+    for a, b in zip(order[:-1], order[1:]):
+        weak[a] |= late(a, b)
+        weak[b] |= late(b, a)
+        common = sorted(set(strength[a]) & set(strength[b]), key=field_of_row.get)[:rows_compared]
+        if len(common) < 3:
+            continue
+        pa = np.median([strength[a][r] for r in common])
+        pb = np.median([strength[b][r] for r in common])
+        if pa < ratio * pb:
+            weak[a] = True
+        elif pb < ratio * pa:
+            weak[b] = True
+    return weak
 
 
 def _onset(minima, on_line):
@@ -516,7 +576,9 @@ def _quantum_capacitance(minima, line, fillings, final, mode, material, berry_ph
     inv_c, v_f = beta[-2], beta[-1]
     err = np.sqrt(np.diag(cov))
     capacitance = 1 / inv_c
-    significant = bool(p_value < 1e-3 and 1e5 < v_f < 1e7 and err[-1] < 0.3 * abs(v_f))
+    # Graphene Fermi velocities lie near 1e6 m/s (Novoselov et al. 2005, from memory); a
+    # "significant" velocity far outside 3e5 ... 3e6 m/s is some other distortion.
+    significant = bool(p_value < 1e-3 and 3e5 < v_f < 3e6 and err[-1] < 0.3 * abs(v_f))
     return {"significant": significant, "fermi_velocity": float(v_f),
             "fermi_velocity_stderr": float(err[-1]), "f_statistic": float(f_value),
             "p_value": p_value, "capacitance_per_area": float(capacitance),

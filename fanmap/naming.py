@@ -20,6 +20,9 @@ from .physics import FLUX_QUANTUM_SINGLE_ELECTRON
 __all__ = ["Naming", "main_sequence_unit", "choose_scale", "classify_fillings",
            "nearest_fraction", "name_lines", "DEGENERACIES"]
 
+#: Denominators tried for fractional states, in order of preference.
+_DENOMINATORS = (3, 5, 7, 9, 2, 4, 6, 8)
+
 #: Degeneracies a main sequence may have (spin, valley, layer flavours).
 DEGENERACIES = (1, 2, 4, 8)
 
@@ -52,11 +55,13 @@ def _on_grid(values, offset, tolerance):
 def main_sequence_unit(slopes, slope_stderr, onsets, weights=None):
     """Spacing ``u``, offset ``gamma`` and common slope shift ``a`` of the main sequence.
 
-    The main sequence is s = sign * u (N + gamma) + a, taken from the lines with the
-    lowest onset fields (at least three, and every line starting within the lowest fifth
-    of the onset range).  The common shift ``a`` absorbs a drift of the origin that
+    The main sequence is s = sign * u (N + gamma) + a, taken from the lines with
+    ``weights`` above 5 % of the strongest (the caller weighs lines by their strength at
+    low field), else from the lines with the lowest onset fields (at least three, and
+    every line starting within the lowest fifth of the onset range).  The common shift ``a`` absorbs a drift of the origin that
     follows the field (rows measured in field order); |a| <= u/4, so that gamma = 0 and
-    gamma = 1/2 stay distinct.  Trial units come from differences of the slopes and
+    gamma = 1/2 stay distinct.  With lines of one sign only, a cannot be told from gamma
+    and is zero.  Trial units come from differences of the slopes and
     from each slope divided by N + gamma; the largest unit that puts at least 80 % of
     the main lines (by weight) on its grid wins.
 
@@ -82,11 +87,16 @@ def main_sequence_unit(slopes, slope_stderr, onsets, weights=None):
     err = np.asarray(slope_stderr, float)
     onsets = np.asarray(onsets, float)
     w = np.ones_like(s) if weights is None else np.asarray(weights, float)
-    order = np.argsort(onsets)
-    lo, hi = onsets.min(), onsets.max()
-    main = onsets <= lo + 0.2 * (hi - lo)
-    main[order[:min(3, s.size)]] = True
+    if weights is not None and (w > 0.05 * w.max()).sum() >= 2:
+        main = w > 0.05 * w.max()
+    else:
+        order = np.argsort(onsets)
+        lo, hi = onsets.min(), onsets.max()
+        main = onsets <= lo + 0.2 * (hi - lo)
+        main[order[:min(3, s.size)]] = True
+        w = np.ones_like(s)
     sm, em, wm = s[main], err[main], w[main]
+    ambipolar = (sm > 0).any() and (sm < 0).any()
     trials = set()
     for i in range(sm.size):
         for m in range(1, 7):
@@ -105,7 +115,8 @@ def main_sequence_unit(slopes, slope_stderr, onsets, weights=None):
         best = None
         for gamma in (0.5, 0.0):
             delta = sm / u - np.sign(sm) * gamma
-            phase = np.angle(np.sum(wm * np.exp(2j * np.pi * delta))) / (2 * np.pi)
+            phase = np.angle(np.sum(wm * np.exp(2j * np.pi * delta))) / (2 * np.pi) \
+                if ambipolar else 0.0
             if abs(phase) > 0.25:
                 continue
             ok = _on_grid(delta, phase, tol) & (np.abs(sm / u - phase) > 0.25)
@@ -113,21 +124,29 @@ def main_sequence_unit(slopes, slope_stderr, onsets, weights=None):
                 if best is None or abs(phase) < abs(best[1]):
                     best = (gamma, phase)
         if best is not None:
-            return (*_refine_unit(s, err, u, best[0], best[1] * u), main)
+            return (*_refine_unit(s, err, u, best[0], best[1] * u, ambipolar), main)
     return float(np.min(np.abs(sm))), 0.0, 0.0, main
 
 
-def _refine_unit(s, err, u, gamma, shift):
-    """Least-squares (u, a) of s = u m + a over every line on the grid m = sign (N + gamma)."""
+def _refine_unit(s, err, u, gamma, shift, ambipolar):
+    """Robust (u, a) of s = u m + a over every line on the grid m = sign (N + gamma).
+
+    Theil-Sen (median of pairwise slopes) rather than least squares, so that one line whose
+    minima sit off its filling (a plateau cut by the window edge) does not pull the grid.
+    With lines of one sign only, a cannot be told from gamma and stays zero.
+    """
+    from scipy.stats import theilslopes
+
     for _ in range(2):
         delta = (s - shift) / u
         m = np.sign(delta) * (np.round(np.abs(delta) - gamma) + gamma)
         ok = (np.abs(delta - m) <= np.maximum(0.1, 3 * err / u)) & (m != 0)
         if ok.sum() < 2 or np.ptp(m[ok]) == 0:
             break
-        X = np.column_stack([m[ok], np.ones(ok.sum())])
-        w = 1 / np.maximum(err[ok], 1e-12) ** 2
-        (u, shift), *_ = np.linalg.lstsq(X * np.sqrt(w)[:, None], s[ok] * np.sqrt(w), rcond=None)
+        if ambipolar:
+            u, shift = theilslopes(s[ok], m[ok])[:2]
+        else:
+            u = float(np.median(s[ok] / m[ok]))
     return float(u), gamma, float(shift)
 
 
@@ -144,7 +163,7 @@ def nearest_fraction(value, max_denominator=9):
     return Fraction(float(value)).limit_denominator(max_denominator)
 
 
-def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, extra_slopes=(),
+def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, hall_slopes=None, extra_slopes=(),
                  extra_stderr=(), material="auto", lever_arm_prior=None):
     """Decide the absolute scale k = g / u; returns ``(g, scale_from, warnings)``.
 
@@ -158,7 +177,9 @@ def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, extra_slopes=(
     main_slopes : ndarray
         Slopes of the main lines (V/T).
     hall_fillings : ndarray, optional
-        |nu| = R_K / |R_xy| measured along each main line (nan where not measured).
+        |nu| = R_K / |R_xy| measured along lines (nan where not measured) ...
+    hall_slopes : ndarray, optional
+        ... whose slopes (less any common shift) are these.
     extra_slopes, extra_stderr : ndarray
         Slopes of the lines off the main sequence, and their standard errors.
     material : str
@@ -178,20 +199,23 @@ def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, extra_slopes=(
     preset = get_material(material)
     main_slopes = np.abs(np.asarray(main_slopes, float))
     if hall_fillings is not None:
+        # Every line sitting on a quantised plateau, nu = R_K / |R_xy| near an integer, gives
+        # its own scale k = nu / |s|; g = u k.
         nu = np.asarray(hall_fillings, float)
-        good = np.isfinite(nu) & (nu > 0.5)
-        if good.sum() >= 1:
-            estimates = nu[good] * unit / main_slopes[good]
+        slopes_all = np.abs(np.asarray(hall_slopes, float))
+        plateau = np.isfinite(nu) & (nu > 0.5) & (np.abs(nu - np.round(nu)) < 0.05)
+        if plateau.sum() >= 1:
+            estimates = np.round(nu[plateau]) * unit / slopes_all[plateau]
             g = float(np.median(estimates))
             nearest = min(DEGENERACIES, key=lambda d: abs(np.log(g / d)))
-            agree = np.abs(estimates / nearest - 1) < 0.12
-            if abs(g / nearest - 1) < 0.12 and agree.sum() >= min(2, good.sum()):
+            agree = np.abs(estimates / nearest - 1) < 0.05
+            if abs(g / nearest - 1) < 0.05 and agree.sum() >= min(2, plateau.sum()):
                 if preset.degeneracy is not None and preset.degeneracy != nearest:
                     warnings.append(f"R_xy plateaus give degeneracy {nearest}, but material "
                                     f"{material!r} has {preset.degeneracy}; using R_xy")
                 return nearest, "hall", warnings
-            warnings.append("R_xy is present but shows no consistent quantised plateaus "
-                            "along the fan lines; not used for the scale")
+        warnings.append("R_xy is present but shows no consistent quantised plateaus "
+                        "along the fan lines; not used for the scale")
     extra = np.asarray(extra_slopes, float)
     extra_err = np.asarray(extra_stderr, float)
     broken = None
@@ -226,15 +250,19 @@ def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, extra_slopes=(
     return None, "ambiguous", warnings
 
 
-def classify_fillings(measured, stderr, degeneracy, gamma, *, max_denominator=9,
+def classify_fillings(measured, stderr, degeneracy, gamma, *, on_main=None, max_denominator=9,
                       significance=5.0):
     """Name each line from its measured filling nu = k s.
 
     A line on the main grid g (N + gamma) is ``integer``; another integer is
     ``broken-symmetry``; a line significantly off every integer (by more than
-    ``significance`` standard errors and 0.04) but on a simple fraction p/q
-    (q <= ``max_denominator``; odd q preferred) is ``fractional``.  Anything else is
+    ``significance`` standard errors and 0.04) is ``fractional`` if it lies on a simple
+    fraction p/q: the smallest odd q <= ``max_denominator`` within max(3 sigma, 0.015),
+    else the smallest even q within max(sigma, 0.005).  Anything else is
     unexplained (kind None).
+
+    Lines flagged in ``on_main`` (already on the main-sequence grid) take the nearest
+    main-sequence filling whatever their small offset.
 
     Returns
     -------
@@ -258,30 +286,34 @@ def classify_fillings(measured, stderr, degeneracy, gamma, *, max_denominator=9,
     for i, (nu, err) in enumerate(zip(measured, stderr)):
         err = max(err, 1e-4)
         nearest = round(nu)
-        if nearest != 0 and abs(nu - nearest) <= max(3 * err, 0.06):
+        if on_main is not None and on_main[i]:
+            nearest = np.sign(nu) * degeneracy * (round(abs(nu) / degeneracy - gamma) + gamma)
+        if nearest != 0 and ((on_main is not None and on_main[i])
+                             or abs(nu - nearest) <= max(3 * err, 0.08)):
             fillings[i] = nearest
             labels.append(str(int(nearest)))
-            on_main = abs(nearest / degeneracy - gamma - round(nearest / degeneracy - gamma)) < 1e-6
-            kinds.append("integer" if on_main else "broken-symmetry")
+            main_state = abs(abs(nearest) / degeneracy - gamma
+                             - round(abs(nearest) / degeneracy - gamma)) < 1e-6
+            kinds.append("integer" if main_state else "broken-symmetry")
             distance.append(None)
             continue
         if abs(nu - nearest) > max(significance * err, 0.04):
-            best = None
-            for q in range(2, max_denominator + 1):
-                p = round(nu * q)
-                candidate = Fraction(p, q)
-                if candidate.denominator != q:
+            # The simplest fraction within reach: odd denominators first, even ones only
+            # when very close (they are rare and need strong evidence).
+            found = None
+            for q in _DENOMINATORS:
+                if q > max_denominator:
                     continue
-                gap = abs(nu - p / q)
-                penalty = 1.0 if q % 2 else 3.0  # even denominators need stronger evidence
-                if best is None or gap * penalty < best[0]:
-                    best = (gap * penalty, candidate, gap)
-            if best is not None and best[2] <= max(3 * err, 0.012):
-                frac = best[1]
-                fillings[i] = float(frac)
-                labels.append(f"{frac.numerator}/{frac.denominator}")
+                candidate = Fraction(round(nu * q), q)
+                tolerance = max(3 * err, 0.015) if q % 2 else max(err, 0.005)
+                if candidate.denominator == q and abs(nu - float(candidate)) <= tolerance:
+                    found = candidate
+                    break
+            if found is not None:
+                fillings[i] = float(found)
+                labels.append(f"{found.numerator}/{found.denominator}")
                 kinds.append("fractional")
-                distance.append(best[2] / err)
+                distance.append(abs(nu - float(found)) / err)
                 continue
         labels.append(f"{nu:.3g}")
         kinds.append(None)
@@ -329,11 +361,8 @@ def name_lines(slopes, slope_stderr, onsets, *, weights=None, hall_fillings=None
     relative = s / unit
     on_main_grid = _on_grid(np.abs(relative), gamma, np.maximum(0.1, 3 * err / unit))
     preset = get_material(material)
-    hall = None
-    if hall_fillings is not None:
-        hall = np.where(on_main_grid, np.asarray(hall_fillings, float), np.nan)
     g, scale_from, warnings = choose_scale(
-        unit, gamma, s, hall_fillings=hall, extra_slopes=s[~on_main_grid],
+        unit, gamma, s, hall_fillings=hall_fillings, hall_slopes=s, extra_slopes=s[~on_main_grid],
         extra_stderr=err[~on_main_grid], material=material, lever_arm_prior=lever_arm_prior)
     if ambipolar is None:
         ambipolar = bool((s[on_main_grid] > 0).any() and (s[on_main_grid] < 0).any())
@@ -371,6 +400,7 @@ def name_lines(slopes, slope_stderr, onsets, *, weights=None, hall_fillings=None
                       np.asarray(fillings),
                       labels, kinds, distance, candidates, warnings)
     scale = g / unit
-    fillings, labels, kinds, distance = classify_fillings(scale * s, scale * err, g, gamma)
+    fillings, labels, kinds, distance = classify_fillings(scale * s, scale * err, g, gamma,
+                                                          on_main=on_main_grid)
     return Naming(unit, gamma, shift, main, g, berry, scale, scale_from, fillings, labels, kinds,
                   distance, candidates, warnings)

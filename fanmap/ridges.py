@@ -23,6 +23,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, signal as _signal
 
+_LEVEL = 0.25  # height (fraction of prominence) where a wide dip's midpoint is taken
+
 __all__ = ["Minima", "log_signal", "valley_strength", "find_row_minima", "link_traces",
            "vote_origin", "vote_slopes", "filling_profile"]
 
@@ -44,7 +46,7 @@ class Minima:
     prominence : ndarray
         Prominence of the dip in units of the row's noise.
     width : ndarray
-        Width at half prominence (V).
+        Width of the dip a quarter of its prominence above its bottom (V).
     valley : ndarray
         Hessian valley strength at the minimum, 0 ... 1.
     weight : ndarray
@@ -71,6 +73,16 @@ class Minima:
         return Minima(**{name: getattr(self, name)[index] for name in self.__dataclass_fields__})
 
 
+def _absolute_noise(r):
+    """Noise (same units as ``r``) where the signal is lowest: MAD of second differences."""
+    second = r[:, 2:] - 2 * r[:, 1:-1] + r[:, :-2]
+    low = r[:, 1:-1] <= np.nanpercentile(r, 10) if np.isfinite(r).any() else None
+    values = second[low & np.isfinite(second)] if low is not None else np.zeros(0)
+    if values.size < 10:
+        return 0.0
+    return 1.4826 * np.median(np.abs(values - np.median(values))) / np.sqrt(6.0)
+
+
 def log_signal(resistance, despike=True):
     """Base-10 log of |R| row by row, spikes removed and NaN gaps bridged.
 
@@ -82,6 +94,9 @@ def log_signal(resistance, despike=True):
         Replace each point by the median of itself and its two gate neighbours,
         which removes single-point spikes and drop-outs but keeps dips wider
         than two points.
+
+    Values below five times the noise of the lowest part of the map are clipped there,
+    so a zero-resistance plateau is one flat minimum rather than many noise dips.
 
     Returns
     -------
@@ -98,12 +113,14 @@ def log_signal(resistance, despike=True):
     """
     r = np.abs(np.asarray(resistance, dtype=float))
     valid = np.isfinite(r)
-    # A floor keeps exact zeros (perfect QH minima) finite; 1e-4 of the row's upper level
-    # is far below any resolvable dip.
+    # A floor keeps exact zeros (perfect QH minima) finite and flat: five times the absolute
+    # noise, so that noise on a zero-resistance plateau makes no extra minima, and at least
+    # 1e-4 of the row's upper level.
     upper = np.nanpercentile(np.where(valid, r, np.nan), 90, axis=1, keepdims=True) \
         if valid.any() else np.ones((r.shape[0], 1))
     upper = np.where(np.isfinite(upper) & (upper > 0), upper, 1.0)
-    logr = np.log10(np.maximum(np.where(valid, r, np.nan), 1e-4 * upper))
+    floor = np.maximum(1e-4 * upper, 5 * _absolute_noise(r))
+    logr = np.log10(np.maximum(np.where(valid, r, np.nan), floor))
     columns = np.arange(r.shape[1])
     for i in range(r.shape[0]):
         ok = valid[i]
@@ -164,8 +181,10 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
     A row whose kept minima are, on median, closer than ``2 * min_separation``
     points is dropped as unresolved.  The position is refined to sub-pixel
     precision: by the vertex of the parabola through the lowest three points for
-    dips narrower than two points, by the midpoint of the dip at half prominence
-    for wider (and flat-bottomed) ones.  Dips touching a NaN gap are dropped.
+    dips narrower than two points, by the midpoint of the dip a quarter of its
+    prominence above its bottom for wider (and flat-bottomed) ones; that level is low
+    enough that steep, unequal walls (the huge neutrality peak beside nu = 2 in graphene)
+    pull the midpoint little.  Dips touching a NaN gap are dropped.
 
     Parameters
     ----------
@@ -208,7 +227,7 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
             continue
         if peaks.size > 2 and np.median(np.diff(peaks)) < 2 * min_separation:
             continue
-        _, _, left, right = _signal.peak_widths(-row, peaks, rel_height=0.5,
+        _, _, left, right = _signal.peak_widths(-row, peaks, rel_height=_LEVEL,
                                                 prominence_data=(props["prominences"],
                                                                  props["left_bases"],
                                                                  props["right_bases"]))

@@ -17,14 +17,14 @@ def handbuilt_fan(fillings, *, alpha=7.2e14, v0=2.0, gate=(-40.0, 40.0, 200), fi
     """A fan map as an xarray.Dataset following the map contract.
 
     ``onsets`` maps a filling to the field below which its dip is absent.
-    ``direction_shift`` moves V0 by +-shift/2 on alternating rows (sweep up/down);
+    ``direction_shift`` moves V0 by ``direction_shift`` on every second row (down sweeps);
     ``drift`` moves V0 linearly by ``drift`` volts from the first to the last row.
     """
     gate = np.linspace(*gate) if isinstance(gate, tuple) else np.asarray(gate, float)
     field = np.linspace(*field) if isinstance(field, tuple) else np.asarray(field, float)
     rows = np.arange(field.size)
     direction = np.where(rows % 2 == 0, 1.0, -1.0)
-    origin = v0 + direction * direction_shift / 2 + drift * (rows / max(rows[-1], 1) - 0.5)
+    origin = v0 + (direction < 0) * direction_shift + drift * rows / max(rows[-1], 1)
     nu = alpha * FLUX_QUANTUM_SINGLE_ELECTRON * (gate[None, :] - origin[:, None]) / field[:, None]
     dip = np.zeros_like(nu)
     for f in fillings:
