@@ -32,7 +32,7 @@ def _field_scale(units, where, ds):
     key = str(units).strip().lower()
     if key not in _FIELD_UNITS:
         raise InputError(f"{_describe(ds)}: field {where} has units {units!r}, not a magnetic "
-                         "field; give the field with --field (in T)")
+                         "field; give the field with --field-value (in T)")
     return _FIELD_UNITS[key]
 
 
@@ -70,11 +70,11 @@ def map_field(gate_map, field=None):
             number = float(text[0])
         except (ValueError, IndexError):
             raise InputError(f"{_describe(gate_map)}: attribute {name!r} = {value!r} is not a "
-                             "field value; give the field with --field (in T)") from None
+                             "field value; give the field with --field-value (in T)") from None
         units = text[1] if len(text) > 1 else gate_map.attrs.get(f"{name}_units")
         return number * _field_scale(units, f"attribute {name!r}", gate_map)
     raise InputError(f"{_describe(gate_map)}: no magnetic field found (no scalar coordinate, "
-                     "variable or attribute 'field'); give it with --field (in T)")
+                     "variable or attribute 'field'); give it with --field-value (in T)")
 
 
 def _scale(var, table, what, option, ds):

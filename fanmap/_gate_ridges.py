@@ -56,16 +56,29 @@ def _explained_share(z, top, bottom, q, finite):
     return 1.0 - (1.0 - share) * (n - 1) / max(n - k, 1)
 
 
-def best_ratio(z, top, bottom, low=1e-2, high=1e2):
+def best_ratio(z, top, bottom, edge_share=0.03):
     """Ratio q = C_b/C_t whose lines V_t + q V_b = const best explain the map ``z``.
 
-    ``z`` has shape (len(bottom), len(top)).  Returns ``(q, share)``, share being
-    the adjusted fraction of the variance of ``z`` explained by u = V_t + q V_b.
+    ``z`` has shape (len(bottom), len(top)).  Orientations in which one gate
+    contributes less than ``edge_share`` of the range of u are left out: lines
+    set by one gate alone (contacts gated only by the bottom gate, regions
+    under one gate) are not constant-density lines of the dual-gated channel.
+    Returns ``(q, share)``, share being the adjusted fraction of the variance
+    of ``z`` explained by u = V_t + q V_b, at the best interior maximum.
     """
+    # Remove what depends on one gate alone (row and column means): a line of
+    # constant V_b from the contacts would otherwise win over the channel's ridge.
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        z = z - np.nanmean(z, axis=1, keepdims=True)
+        z = z - np.nanmean(z, axis=0, keepdims=True)
     finite = np.isfinite(z)
+    spans = np.ptp(top) / np.ptp(bottom)
+    low, high = spans * edge_share / (1 - edge_share), spans * (1 - edge_share) / edge_share
     coarse = np.geomspace(low, high, 401)
     shares = np.array([_explained_share(z, top, bottom, q, finite) for q in coarse])
-    best = int(np.argmax(shares))
+    interior = np.flatnonzero((shares[1:-1] >= shares[:-2]) & (shares[1:-1] >= shares[2:])) + 1
+    best = int(interior[np.argmax(shares[interior])]) if interior.size else int(np.argmax(shares))
     lo, hi = coarse[max(best - 2, 0)], coarse[min(best + 2, coarse.size - 1)]
     fine = np.geomspace(lo, hi, 41)
     fine_shares = np.array([_explained_share(z, top, bottom, q, finite) for q in fine])
@@ -87,7 +100,12 @@ def profile(z, top, bottom, q, fine=False):
         means = sums / counts
     centres = u0 + (np.arange(counts.size) + 0.5) * step
     keep = counts >= max(3, 0.2 * np.median(counts[counts > 0]))
-    return centres[keep], means[keep], counts[keep]
+    # Trim the sparse ends; fill sparse bins inside (pixel and bin grids beat) so
+    # that the profile stays evenly spaced.
+    first, last = np.flatnonzero(keep)[[0, -1]]
+    centres, means, counts, keep = (a[first:last + 1] for a in (centres, means, counts, keep))
+    means = np.where(keep, means, np.interp(centres, centres[keep], means[keep]))
+    return centres, means, counts
 
 
 def rotated_grid(values, top, bottom, q, step=None):
@@ -117,7 +135,8 @@ def rotated_grid(values, top, bottom, q, step=None):
 def _lorentz_batch(t, y, weights, x0, width, sign, iterations=30):
     """Fit y = b0 + b1 t + sign*A/(1 + ((t - x0)/w)^2) to every row of (t, y) at once.
 
-    Returns ``(x0, x0_stderr, amplitude, width, ok)``; rows are independent.
+    Returns ``(x0, x0_stderr, amplitude, height, ok)``, height being the model
+    at x0 (background plus feature); rows are independent.
     """
     n = y.shape[0]
     edge = np.where(weights > 0, y, np.nan)
@@ -175,7 +194,8 @@ def _lorentz_batch(t, y, weights, x0, width, sign, iterations=30):
     stderr = np.sqrt(np.abs(var))
     ok = (np.isfinite(params).all(axis=1) & np.isfinite(stderr) & (params[:, 2] > 0)
           & (params[:, 0] > t[:, 0]) & (params[:, 0] < t[:, -1]))
-    return params[:, 0], stderr, params[:, 2], np.exp(params[:, 1]), ok
+    height = params[:, 3] + params[:, 4] * params[:, 0] + sign * params[:, 2]
+    return params[:, 0], stderr, params[:, 2], height, ok
 
 
 def trace_extrema(values, scan, other, q_scan, centres, half_window, sign, width,
@@ -204,7 +224,8 @@ def trace_extrema(values, scan, other, q_scan, centres, half_window, sign, width
     Returns
     -------
     dict of arrays: ``line`` (index into centres), ``scan``, ``other``,
-    ``scan_stderr`` (V), ``amplitude``, ``peak`` (value at the extremum, ohm).
+    ``scan_stderr`` (V), ``amplitude`` (feature above its background) and
+    ``peak`` (fitted value at the extremum), in the units of ``values``.
     """
     step = scan[1] - scan[0]
     n_other, n_scan = values.shape
@@ -235,20 +256,18 @@ def trace_extrema(values, scan, other, q_scan, centres, half_window, sign, width
         rows, index, window, weights = rows[good_rows], index[good_rows], window[good_rows], weights[good_rows]
         y = np.where(weights > 0, window, 0.0)
         t = np.broadcast_to(offsets.astype(float), y.shape).copy()
-        x0, x0_err, amp, _, ok = _lorentz_batch(t, y, weights, np.zeros(len(rows)),
+        x0, x0_err, amp, height, ok = _lorentz_batch(t, y, weights, np.zeros(len(rows)),
                                                 np.full(len(rows), max(width, 0.7)), sign)
         base = np.nanmedian(np.abs(window), axis=1)
         ok &= amp > min_contrast * np.maximum(base, 1e-300)
         ok &= x0_err < 0.25 * half_window
-        peak_index = np.clip(np.rint(x0).astype(int), -half_window, half_window) + half_window
-        peak = window[np.arange(len(rows)), peak_index]
         position = scan[0] + (index[:, half_window] + x0) * step
         out["line"].append(np.full(ok.sum(), line))
         out["scan"].append(position[ok])
         out["other"].append(other[rows][ok])
         out["scan_stderr"].append(np.abs(x0_err[ok] * step))
         out["amplitude"].append(amp[ok])
-        out["peak"].append(peak[ok])
+        out["peak"].append(height[ok])
     return {key: (np.concatenate(v) if v else np.empty(0)) for key, v in out.items()}
 
 
@@ -259,14 +278,30 @@ def sample_along_line(values, top, bottom, top_of_bottom, bottoms):
     return interp(np.column_stack([bottoms, top_of_bottom(bottoms)]))
 
 
+def _correlation_length(resid):
+    """Integrated autocorrelation length (samples) of a residual sequence, at least 1."""
+    r = resid - resid.mean()
+    if r.size < 4 or not np.any(r):
+        return 1.0
+    acf = np.correlate(r, r, mode="full")[r.size - 1:] / np.dot(r, r)
+    total = 1.0
+    for value in acf[1:r.size // 2]:
+        if value <= 0:
+            break
+        total += 2 * value
+    return float(total)
+
+
 def symmetry_centre(x, y, min_overlap=0.3):
     """Point c about which the curve y(x) is most nearly even, with its standard error.
 
     Searches the inner part of the range so that at least ``min_overlap`` of the
-    range lies on both sides.  Returns ``(c, stderr, contrast, at_edge)``:
-    ``contrast`` is the spread of y explained by its even part relative to the
-    noise, ``at_edge`` is True when the best centre sits on the search boundary
-    (no centre found: a flat or monotonic curve).
+    range lies on both sides.  Returns ``(c, stderr, dip, at_edge)``: ``dip`` is
+    the mismatch between the two sides at c relative to its median over all
+    trial centres (well below 1 for a curve with a clear centre, near 1 for a
+    flat or noisy one); ``at_edge`` is True when the best centre sits on the
+    search boundary (a monotonic curve).  The standard error allows for
+    residuals correlated along the curve (integrated autocorrelation).
     """
     x = np.asarray(x, float)
     y = np.asarray(y, float)
@@ -287,9 +322,15 @@ def symmetry_centre(x, y, min_overlap=0.3):
         if reach < half_min:
             return np.inf, 0
         d = np.arange(spacing, reach, spacing)
-        diff = f(c + d) - f(c - d)
-        diff = diff[np.isfinite(diff)]
-        return np.mean(diff * diff) if diff.size else np.inf, diff.size
+        right, left = f(c + d), f(c - d)
+        ok = np.isfinite(right) & np.isfinite(left)
+        if ok.sum() < 4:
+            return np.inf, 0
+        right, left = right[ok], left[ok]
+        centre_value = 0.5 * (right.mean() + left.mean())
+        # Normalised: 0 for a mirror image, about 1 for two unrelated (or flat, noisy) sides.
+        spread = np.sum((right - centre_value) ** 2 + (left - centre_value) ** 2)
+        return np.sum((right - left) ** 2) / max(spread, 1e-300), ok.sum()
 
     candidates = np.linspace(x[0] + half_min, x[-1] - half_min, 4 * x.size)
     costs = np.array([mismatch(c)[0] for c in candidates])
@@ -307,10 +348,13 @@ def symmetry_centre(x, y, min_overlap=0.3):
     slope = np.gradient(signal.savgol_filter(y, min(11, x.size - (1 - x.size % 2)), 2), x)
     fs = interpolate.interp1d(x, slope, bounds_error=False, fill_value=np.nan)
     jac = fs(centre + d) - fs(centre - d)
-    jac = jac[np.isfinite(jac)]
+    resid = f(centre + d) - f(centre - d)
+    ok = np.isfinite(jac) & np.isfinite(resid)
+    jac, resid = jac[ok], resid[ok]
     dof = max(count - 1, 1)
-    stderr = np.sqrt(max(cost, 2 * noise**2) / max(np.sum(jac * jac), 1e-300) * count / dof)
-    even_part = f(centre + d) + f(centre - d)
-    even_part = even_part[np.isfinite(even_part)]
-    contrast = float(np.std(even_part / 2) / noise) if even_part.size else 0.0
-    return centre, float(stderr), contrast, bool(at_edge)
+    mean_square = max(np.mean(resid**2) if resid.size else 0.0, 2 * noise**2)
+    stderr = np.sqrt(mean_square / max(np.sum(jac * jac), 1e-300) * count / dof)
+    stderr *= np.sqrt(_correlation_length(resid))
+    finite_costs = costs[np.isfinite(costs)]
+    dip = float(cost / np.median(finite_costs)) if finite_costs.size else 1.0
+    return centre, float(stderr), dip, bool(at_edge)

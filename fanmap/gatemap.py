@@ -93,7 +93,7 @@ def _neutrality_ridge(arrays, q, name):
     if prominence < 6 * noise or peak in (0, ps.size - 1):
         raise NoFanError(
             f"{name}: no charge-neutrality ridge (a maximum along a constant-density line) found "
-            "at zero field; check that the map spans neutrality, or give the field with --field "
+            "at zero field; check that the map spans neutrality, or give the field with --field-value "
             "if this map was taken in a magnetic field")
     traces = _traces(arrays, q)
     du = u[1] - u[0]
@@ -124,18 +124,44 @@ def _vertex(u, p, index):
     return u[index] + np.clip(shift, -0.5, 0.5) * (u[1] - u[0])
 
 
-def _fundamental_spacing(positions):
-    """Largest spacing of which (nearly) every gap between lines is an integer multiple."""
-    gaps = np.diff(np.sort(positions))
-    gaps = gaps[gaps > 0]
-    if gaps.size == 0:
-        return np.nan
-    for candidate in np.sort(gaps)[::-1]:
-        ratio = gaps / candidate
-        ok = (np.abs(ratio - np.rint(ratio)) < 0.15) & (np.rint(ratio) >= 1)
-        if ok.mean() >= 0.75:
-            return float(candidate)
-    return float(np.min(gaps))
+def _lattice(positions, weights, smallest):
+    """Spacing of the evenly spaced family among ``positions``, their indices and a mask.
+
+    Every trial spacing is scored by the weight of the lines that fall within
+    a tenth of a spacing of a lattice anchored on one of the lines (best
+    anchor).  Every integer fraction of the true spacing scores as well, so
+    the largest spacing that scores nearly as well as the best is the
+    fundamental one.  Lines on the lattice (within 0.2 of a spacing) keep their
+    index; others (broken symmetry, noise) are masked out.
+    """
+    positions = np.asarray(positions, float)
+    weights = np.asarray(weights, float)
+    span = np.ptp(positions)
+    if positions.size < 3 or span <= 0:
+        return np.nan, np.zeros(positions.size, int), np.zeros(positions.size, bool)
+
+    def scores(trials):
+        rel = (positions[None, :, None] - positions[None, None, :]) / trials[:, None, None]
+        off = rel - np.rint(rel)                       # (trial, line, anchor)
+        kernel = np.exp(-0.5 * (off / 0.1) ** 2)
+        return np.max(np.einsum("j,tja->ta", weights, kernel), axis=1) / weights.sum()
+
+    trials = np.geomspace(smallest, span / 2, 1500)
+    score = scores(trials)
+    good = np.flatnonzero(score >= 0.8 * score.max())
+    spacing = trials[good[-1]]
+    near = np.geomspace(spacing * 0.98, spacing * 1.02, 201)
+    spacing = near[np.argmax(scores(near))]
+    ref = positions[np.argmax(weights)]
+    rel = (positions - ref) / spacing
+    on_grid = np.abs(rel - np.rint(rel)) < 0.2
+    index = np.rint(rel).astype(int)
+    if np.unique(index[on_grid]).size >= 2:
+        slope, _ = np.polyfit(index[on_grid], positions[on_grid], 1,
+                              w=np.sqrt(weights[on_grid]))
+        spacing = float(slope)
+    index = index - index[on_grid].min() if on_grid.any() else index
+    return float(spacing), index, on_grid
 
 
 def _quantum_hall_lines(arrays, q, name):
@@ -144,21 +170,19 @@ def _quantum_hall_lines(arrays, q, name):
     ps = _smooth(p)
     # Robust noise of the profile: most of it is smooth background between narrow lines.
     noise = 1.4826 * np.median(np.abs(np.diff(p, 2))) / np.sqrt(6) + 1e-12
-    minima, props = signal.find_peaks(-p, prominence=max(6 * noise, 0.03 * np.ptp(p)))
-    if minima.size < 2:
+    # QH minima are deep: at least a 5 % dip (0.05 in log R) and well above the noise.
+    minima, props = signal.find_peaks(-p, prominence=max(6 * noise, 0.05))
+    if minima.size < 3:
         raise NoFanError(
-            f"{name}: fewer than two quantum Hall minima along constant-density lines at "
-            f"B = {arrays['field']:g} T; a fixed-field map needs at least two consecutive "
-            "filling factors (check the field with --field)")
-    prom = props["prominences"]
-    strong = prom >= 0.25 * np.sort(prom)[-min(3, prom.size):].mean()
-    positions = _vertex(u, p, minima[strong])
-    spacing = _fundamental_spacing(positions)
-    rel = (positions - positions[0]) / spacing
-    on_grid = np.abs(rel - np.rint(rel)) < 0.2
-    positions, index = positions[on_grid], np.rint(rel[on_grid]).astype(int)
-    if positions.size < 2:
-        raise NoFanError(f"{name}: the quantum Hall minima do not form an evenly spaced family")
+            f"{name}: fewer than three quantum Hall minima along constant-density lines at "
+            f"B = {arrays['field']:g} T; a fixed-field map needs at least three consecutive "
+            "filling factors (check the field with --field-value)")
+    positions = _vertex(u, p, minima)
+    spacing, index, on_grid = _lattice(positions, props["prominences"], 4 * (u[1] - u[0]))
+    positions, index = positions[on_grid], index[on_grid]
+    if positions.size < 3 or np.unique(index).size < 3:
+        raise NoFanError(f"{name}: the quantum Hall minima at B = {arrays['field']:g} T do not "
+                         "form an evenly spaced family of constant-density lines")
     slope, intercept = np.polyfit(index, positions, 1)
     spacing = float(slope)
     traces = _traces(arrays, q, spacing / 10)
@@ -169,16 +193,25 @@ def _quantum_hall_lines(arrays, q, name):
     found = ridges.trace_extrema(traces["values"], traces["u"], traces["w"], 0.0, positions,
                                  half_window, -1, pix, min_contrast=0.05)
     top, bottom, err = _points(found, q)
-    # A maximum between the lines is the neutral (nu = 0) region of an ambipolar device.
+    # A maximum between the lines is the neutral (nu = 0) region of an ambipolar device;
+    # its height along D (the points' amplitudes) locates D = 0.
     neutral_u = np.nan
+    neutral = None
     top_max = int(np.argmax(ps))
     if positions.min() < u[top_max] < positions.max():
-        neutral_u = float(u[top_max])
+        neutral_u = float(_vertex(u, ps, np.array([top_max]))[0])
+        found0 = ridges.trace_extrema(traces["values"], traces["u"], traces["w"], 0.0, [neutral_u],
+                                      max(int(0.3 * spacing / step), 3), +1, pix, min_contrast=0.05)
+        if found0["scan"].size >= 9:
+            t0, b0, e0 = _points(found0, q)
+            # At fixed field the nu = 0 peak is wide against the window: its fitted height
+            # is steadier than its amplitude above a background.
+            neutral = {"top": t0, "bottom": b0, "stderr": e0, "amplitude": found0["peak"]}
     return {"mode": "quantum-hall", "u_lines": positions,
             "spacing": spacing, "profile_step": u[1] - u[0],
             "points": {"top": top, "bottom": bottom, "stderr": err,
                        "line": found["line"].astype(int), "trace": found["other"]},
-            "line_index": index, "neutral_u": neutral_u}
+            "line_index": index, "neutral_u": neutral_u, "neutral_points": neutral}
 
 
 # --- naming the fillings ------------------------------------------------------------
@@ -202,7 +235,8 @@ def _hall_fillings(arrays, found):
         resistance = np.median(values)
         nu = ph.hall_filling(abs(resistance))
         whole = np.rint(nu)
-        if whole < 1 or abs(nu - whole) > 0.03 * whole or np.std(values) > 0.05 * abs(resistance):
+        spread = 1.4826 * np.median(np.abs(values - resistance))
+        if whole < 1 or abs(nu - whole) > 0.03 * whole or spread > 0.05 * abs(resistance):
             fillings.append(None)
             continue
         fillings.append(int(np.sign(resistance) * whole))
@@ -448,7 +482,15 @@ def _neutral_point(maps, q, k):
     for m in preferred:
         if m["mode"] == "neutrality":
             # The ridge's height above its own background: free of the contact resistance.
-            vb, values = m["points"]["bottom"], np.log(m["points"]["amplitude"])
+            pts = m["points"]
+        else:
+            pts = m.get("neutral_points")
+        if pts is not None:
+            # Leave out points off the line (a crossing contact feature, say).
+            u = pts["top"] + q * pts["bottom"]
+            spread = 1.4826 * np.median(np.abs(u - np.median(u))) + 1e-12
+            on_line = np.abs(u - np.median(u)) < 4 * spread
+            vb, values = pts["bottom"][on_line], np.log(pts["amplitude"][on_line])
         else:
             vb = _neutral_segment(m["arrays"], q, k)
             z = ridges.log_signal(m["arrays"]["rxx"])
@@ -456,10 +498,10 @@ def _neutral_point(maps, q, k):
                                               lambda b: k - q * b, vb)
         if vb.size < 9:
             continue
-        centre, stderr, contrast, at_edge = ridges.symmetry_centre(vb, values)
-        m["symmetry"] = {"bottom_gate": centre, "stderr": stderr, "contrast": contrast,
+        centre, stderr, dip, at_edge = ridges.symmetry_centre(vb, values)
+        m["symmetry"] = {"bottom_gate": centre, "stderr": stderr, "dip": dip,
                          "at_edge": at_edge}
-        if np.isfinite(centre) and not at_edge and contrast > 3.0:
+        if np.isfinite(centre) and not at_edge and dip < 0.5:
             estimates.append((centre, stderr))
     if not estimates:
         return None
