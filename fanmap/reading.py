@@ -46,6 +46,7 @@ MAX_ABS_GATE = 500.0
 MAX_ABS_FIELD = 100.0
 
 _NONE = ("", "none", "no", "off", "-")
+_CURRENT = "_current"  # a measured current carried along with the signals
 _CURRENT_ATTRS = ("excitation_current", "excitation", "current", "i_exc", "iexc", "i_ac", "iac",
                   "lockin_current", "bias_current", "source_current")
 _FIELD_ATTRS = ("field", "b", "magnetic_field", "bz", "b_field", "field_t")
@@ -426,7 +427,8 @@ def _signal_to_ohm(values, raw, name, role, ctx, current, other=None):
                             "to turn it into a resistance; give it with --excitation-current "
                             "(e.g. --excitation-current '10 nA') or as a file attribute "
                             "'excitation_current'")
-        ctx.note(f"{name!r}: lock-in voltage ({unit_text}) / {current:.4g} A -> ohm")
+        per = f"{current:.4g} A" if np.ndim(current) == 0 else "the measured current"
+        ctx.note(f"{name!r}: lock-in voltage ({unit_text}) / {per} -> ohm")
         return values * (unit.factor / current), attrs
     if unit.quantity == "conductance":
         g = values * unit.factor
@@ -456,10 +458,33 @@ def _conductance_si(raw, name, ctx, role):
 
 
 def _convert_signals(arrays, raw, names, ctx):
-    """``arrays``: role -> values in file units (numpy or DataArray); returns role -> (values, attrs)."""
+    """``arrays``: role -> values in file units (numpy or DataArray); returns role -> (values, attrs).
+
+    A measured current carried along as ``_CURRENT`` divides lock-in voltages point by point
+    when no single excitation current is given.
+    """
+    arrays = dict(arrays)
+    measured = arrays.pop(_CURRENT, None)
     current = None
     if any(_is_voltage(raw, names[r], ctx, r) for r in arrays):
         current = _excitation_current(raw, names[S.RXX], ctx)
+        if current is None and measured is not None:
+            name = names[_CURRENT]
+            unit_text, _ = _units_of(raw, name, ctx)
+            factor = 1.0
+            if unit_text is None:
+                ctx.note(f"units of {name!r}: none in the file, assumed A (set --units {name}=UNIT)")
+            else:
+                try:
+                    unit = parse_unit(unit_text, where=repr(name))
+                except InputError as exc:
+                    raise ctx.error(f"{exc}; set --units {name}=UNIT") from None
+                if unit.quantity != "current":
+                    raise ctx.error(f"{name!r} has units {unit_text!r}, not a current; "
+                                    "give --excitation-current")
+                factor = unit.factor
+            current = measured * factor
+            ctx.note(f"excitation current: measured point by point in {name!r}")
     factors = {r: _conductance_si(raw, names[r], ctx, r) for r in arrays}
     tensor = len(arrays) == 2 and all(f is not None for f in factors.values())
     out = {}
@@ -497,6 +522,11 @@ def _interpret(raw, ctx):
     names = {S.RXX: signal}
     if hall is not None:
         names[S.RXY] = hall
+    if ctx.options["excitation_current"] is None and any(_is_voltage(raw, n, ctx, r) for r, n in names.items()):
+        for name in raw.data_vars:
+            if info.get(name, (None,))[0] == R.CURRENT and set(raw[name].dims) == set(sig.dims):
+                names[_CURRENT] = name
+                break
     scalars = {}
     for d in extra:
         for name in raw.variables:
@@ -750,6 +780,8 @@ def _finish(ds, raw, info, scalars, names, ctx):
     if S.SWEEP_DIRECTION in ds.coords:
         ds[S.SWEEP_DIRECTION].attrs.update(units="1", long_name="gate sweep direction (+1 up, -1 down)")
     for role, name in names.items():
+        if role == _CURRENT:
+            continue
         ds[role].attrs["original_name"] = name
         unit = raw[name].attrs.get("units")
         if unit:

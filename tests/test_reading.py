@@ -685,3 +685,83 @@ def test_error_type_is_the_projects(tmp_path):
     path.write_bytes(b"PK\x03\x04 not really a zip")
     with pytest.raises(FanmapError):
         open_map(path)
+
+
+# --- more layouts -------------------------------------------------------------------------
+
+def test_measured_current_column_divides_point_by_point(tmp_path):
+    # R = V / I (Ohm's law) with the current measured at every point
+    fan = hand_fan(n_field=4, n_gate=9)
+    rng = np.random.default_rng(0)
+    current = rng.uniform(9e-9, 11e-9, fan.rxx.shape)
+    lines = ["B (T), Vg (V), Vxx (uV), I (nA)"]
+    for i, b in enumerate(fan.field.values):
+        for j, g in enumerate(fan.gate.values):
+            lines.append(f"{b}, {g}, {fan.rxx.values[i, j] * current[i, j] * 1e6:.17g}, {current[i, j] * 1e9:.17g}")
+        lines.append("")
+    path = tmp_path / "iv.csv"
+    path.write_text("\n".join(lines))
+    read = open_map(path)
+    np.testing.assert_allclose(read.rxx.values, fan.rxx.values, rtol=1e-12)
+    assert "measured point by point in 'I'" in read.attrs["recognised"]
+
+
+def test_simulated_gate_map_round_trip(tmp_path):
+    from fanmap.simulate import simulate_gate_map
+    gm = simulate_gate_map("graphene-bilayer", top_gate=np.linspace(-4, 4, 21),
+                           bottom_gate=np.linspace(-40, 40, 17), field=2.0, seed=2)
+    path = tmp_path / "gm.nc"
+    gm.transpose("top_gate", "bottom_gate").to_netcdf(path)
+    read = open_map(path)
+    assert read.attrs["map_kind"] == "gates"
+    assert read.rxx.dims == ("bottom_gate", "top_gate")
+    np.testing.assert_allclose(read.rxx.values, gm.rxx.values)
+    assert float(read.field) == pytest.approx(2.0)
+
+
+def test_gate_map_in_long_format(tmp_path):
+    top = np.linspace(-2, 2, 9)
+    bottom = np.linspace(-5, 5, 6)
+    lines = ["# field = 4 T", "Vbg (V)\tVtg (mV)\tRxx (kOhm)"]
+    truth = np.empty((bottom.size, top.size))
+    for i, vb in enumerate(bottom):
+        for j, vt in enumerate(top):
+            truth[i, j] = 1e3 / (0.1 + (0.3 * vt + 0.1 * vb) ** 2)
+            lines.append(f"{vb}\t{vt * 1e3}\t{truth[i, j] / 1e3:.17g}")
+        lines.append("")
+    path = tmp_path / "gates.tsv"
+    path.write_text("\n".join(lines))
+    read = open_map(path)
+    assert read.attrs["map_kind"] == "gates"
+    np.testing.assert_allclose(read.top_gate.values, top)
+    np.testing.assert_allclose(read.rxx.values, truth, rtol=1e-12)
+    assert float(read.field) == pytest.approx(4.0)
+
+
+def test_length_one_field_dimension_becomes_the_scalar_field(tmp_path):
+    path, rxx, top, bottom = hand_gate_map(tmp_path)
+    ds = xr.open_dataset(path).load()
+    ds = ds.expand_dims(B=[1.5]).assign_coords(B=("B", [1.5], {"units": "T"}))
+    path2 = tmp_path / "with_b.nc"
+    ds.to_netcdf(path2)
+    read = open_map(path2)
+    assert float(read.field) == pytest.approx(1.5)
+    np.testing.assert_allclose(read.rxx.values, rxx)
+
+
+def test_per_row_gate_values_in_netcdf_are_regridded(tmp_path):
+    # a 2-D gate variable: each sweep's own gate readings, slightly different per row
+    fan = hand_fan()
+    b, v = np.meshgrid(fan.field.values, fan.gate.values, indexing="ij")
+    readback = v + 0.01 * ((np.arange(fan.sizes["field"]) % 3) - 1)[:, None]
+    signal = 500.0 + 40.0 * readback + 3.0 * b
+    path = tmp_path / "readback.nc"
+    xr.Dataset({"Rxx": (("sweep", "point"), signal, {"units": "ohm"}),
+                "Vg": (("sweep", "point"), readback, {"units": "V"})},
+               coords={"B": ("sweep", fan.field.values, {"units": "T"})}).to_netcdf(path)
+    read = open_map(path)
+    assert read.rxx.dims == ("field", "gate")
+    inner = slice(1, -1)
+    expected = 500.0 + 40.0 * read.gate.values[inner] + 3.0 * read.field.values[:, None]
+    np.testing.assert_allclose(read.rxx.values[:, inner], expected, rtol=1e-9)
+    assert "differs from sweep to sweep" in read.attrs["recognised"]
