@@ -1,18 +1,17 @@
-"""Landau-level spectra used by the simulator, with broken-symmetry and fractional gaps.
+"""Landau-level spectra used by the simulator, with broken-symmetry gaps.
 
 A spectrum at field B is a list of levels, each a centre energy (J) and a
 weight in units of the flavour density eB/h, sorted by energy, plus the
 filling at the bottom of the lowest level (so that densities are counted from
 charge neutrality).  The single-particle centres come from :mod:`fanmap.physics`.
 
-Gaps beyond the single-particle ones (broken-symmetry integers, fractional
-states) are modelled as splittings of a level into sub-bands whose weights
-end at the gap's filling.  Every such gap grows linearly with field and is
-fixed by its *onset field* B_on: the gap equals ``ONSET_GAP_RATIO`` times the
-extended-state width at B_on, which is where a clear minimum of sigma_xx
-first appears.  A linear-in-B gap is the behaviour of exchange-enhanced spin
-and valley gaps; for fractional states it is a simple stand-in for a gap of
-Coulomb origin reduced by disorder.
+Broken-symmetry integer gaps are modelled as splittings of a level into
+sub-levels whose weights end at the gap's filling.  Every such gap grows
+linearly with field and is fixed by its *onset field* B_on: the gap equals
+``ONSET_GAP_RATIO`` times the extended-state width at B_on, which is where a
+clear minimum of sigma_xx first appears.  A linear-in-B gap is the behaviour
+of exchange-enhanced spin and valley gaps.  (Fractional states are modelled
+separately, in :mod:`fanmap._fractional`.)
 
 The zero-field density of states of each model (:meth:`SpectrumModel.smooth_dos`)
 is what the Landau levels average to at low field; the simulator uses it to
@@ -65,18 +64,18 @@ class SpectrumModel:
     """Everything the simulator needs to know about a material's levels.
 
     Energies in J, masses in units of m_e, densities in m^-2, fields in T.
-    ``broken_symmetry`` maps integer fillings to onset fields, ``fractional``
-    maps :class:`fractions.Fraction` fillings to onset fields.
+    ``broken_symmetry`` maps integer fillings to onset fields.
     """
 
     kind: str                                  # "2deg", "monolayer", "bilayer", "moire"
-    broadening: float                          # Gamma at 1 T (J); Gamma(B) = broadening sqrt(|B|/1 T)
+    broadening: float                          # Gamma at 1 T (J), see width()
+    zero_field_broadening: float = 0.0         # Gamma_0 (J): band tails at B = 0
+    puddle_energy: float = 0.0                 # monolayer: E_F of the puddle density (J)
     extended_fraction: float = 0.5             # extended-state width / Gamma
     effective_mass: float = 0.067
     g_factor: float = 0.0
     fermi_velocity: float = 1.0e6
     broken_symmetry: dict = dc_field(default_factory=dict)
-    fractional: dict = dc_field(default_factory=dict)
     band_gap: float = 0.0                      # bilayer: gap at neutrality (J), from D
     # moire only
     cell_density: float = 0.0                  # n0
@@ -87,12 +86,12 @@ class SpectrumModel:
 
     # --- widths -------------------------------------------------------------
     def width(self, field):
-        """Total level width Gamma(B) (J), growing as sqrt(B)."""
-        return self.broadening * np.sqrt(np.abs(field))
+        """Total level width Gamma(B) = sqrt(Gamma_1^2 |B| / 1 T + Gamma_0^2) (J)."""
+        return np.sqrt(self.broadening**2 * np.abs(field) + self.zero_field_broadening**2)
 
     def onset_gap(self, filling, field):
-        """Gap (J) of a broken-symmetry or fractional state at ``field``; 0 if none."""
-        onset = self.broken_symmetry.get(filling, self.fractional.get(filling))
+        """Gap (J) of a broken-symmetry state at ``field``; 0 if none."""
+        onset = self.broken_symmetry.get(filling)
         if onset is None or onset <= 0:
             return 0.0
         extended_at_onset = self.extended_fraction * self.width(onset)
@@ -140,6 +139,16 @@ class SpectrumModel:
             inside = (np.abs(energy) >= e_lo) & (np.abs(energy) < e_hi)
             out = np.where(inside, dos, out)
         return out
+
+    def reference_dos(self, energy):
+        """Zero-field density of states that normalises the scattering rate (J^-1 m^-2).
+
+        In monolayer graphene the density of states vanishes at neutrality; puddles
+        smear it over ``puddle_energy``, so the reference is D_0(sqrt(E^2 + E_p^2)).
+        """
+        if self.kind == "monolayer":
+            return self.smooth_dos(np.hypot(energy, self.puddle_energy))
+        return self.smooth_dos(energy)
 
     def smooth_density(self, energy):
         """Zero-temperature density (m^-2, from neutrality) with all states below ``energy`` filled."""
@@ -254,11 +263,11 @@ class SpectrumModel:
         return energies, weights, nu_lo
 
     def _split(self, energies, weights, nu_lo, field):
-        """Split levels that contain a broken-symmetry or fractional filling into sub-bands."""
+        """Split levels that contain a broken-symmetry filling into sub-levels."""
         cuts = {}
         # (in a 2DEG the spin gaps are already in the spin-resolved levels)
         integers = [] if self.kind == "2deg" else list(self.broken_symmetry)
-        gaps = [(nu, self.onset_gap(nu, field)) for nu in integers + list(self.fractional)
+        gaps = [(nu, self.onset_gap(nu, field)) for nu in integers
                 if nu not in self.extra_gaps]
         gaps += list(self.extra_gaps.items())
         for nu, gap in gaps:

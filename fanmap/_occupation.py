@@ -59,7 +59,7 @@ def row_table(model, field, density_range, temperature, *, shape="gaussian",
     n_min, n_max = density_range
     kt = ph.BOLTZMANN * temperature
     zero_field = abs(field) < 1e-6
-    gamma = model.width(field) if not zero_field else 0.0
+    gamma = model.width(field)
     widths = np.array([gamma, model.extended_fraction * gamma, hall_fraction * gamma])
     smear = np.sqrt(widths**2 + (1.8 * kt) ** 2)
     tail = (40.0 if shape == "lorentzian" else 8.0) * gamma + 12 * kt
@@ -89,6 +89,7 @@ def row_table(model, field, density_range, temperature, *, shape="gaussian",
     step = energy[1] - energy[0]
 
     smooth = model.smooth_dos(energy) * step
+    reference_weights = model.reference_dos(energy) * step
     if levels is None:
         weights_on_grid = smooth
         base = model.smooth_density(energy[0])
@@ -112,7 +113,7 @@ def row_table(model, field, density_range, temperature, *, shape="gaussian",
     stairs = np.concatenate([np.full(pad, base), stairs, np.full(size - pad - points, stairs[-1])])
     stairs_spectrum = np.fft.rfft(stairs)
     spectrum = np.fft.rfft(weights_on_grid, size)
-    smooth_spectrum = np.fft.rfft(smooth, size)
+    reference_spectrum = np.fft.rfft(reference_weights, size)
 
     def convolve(transform, width, shift=0):
         out = np.fft.irfft(transform * _kernel(omega, width, shape) * thermal, size)
@@ -121,7 +122,7 @@ def row_table(model, field, density_range, temperature, *, shape="gaussian",
     density = convolve(stairs_spectrum, widths[0], pad)
     hall_density = convolve(stairs_spectrum, widths[2], pad)
     extended = convolve(spectrum, widths[1])
-    reference = convolve(smooth_spectrum, widths[0])
+    reference = convolve(reference_spectrum, widths[0])
     # a vanishing floor of localised states keeps n(E) strictly increasing
     density = density + 1e-9 * max(np.ptp(density), 1.0) * np.linspace(0, 1, points)
     eps = 1e-3 * reference.max()

@@ -2,7 +2,7 @@
 
 Each row of a fan map is one gate sweep at fixed field.  For that field the
 material's Landau levels (from :mod:`fanmap.physics`, split by broken-symmetry
-and fractional gaps, see :mod:`fanmap._levels`) are broadened with a width
+gaps, see :mod:`fanmap._levels`) are broadened with a width
 Gamma(B) = Gamma_1 sqrt(B / 1 T), smeared exactly by -df/dE, and the chemical
 potential of every pixel is solved from its density (:mod:`fanmap._occupation`).
 
@@ -36,6 +36,7 @@ from . import _realism
 from . import _schema as S
 from . import physics as ph
 from ._atomic import atomic_path
+from ._fractional import composite_fermion_energy, composite_fermion_transport, fraction_sequence
 from ._levels import SpectrumModel, bilayer_gap_from_displacement, ONSET_GAP_RATIO
 from ._occupation import row_table, evaluate
 from .errors import InputError
@@ -54,11 +55,11 @@ PRESETS = {
         gate=(-40.0, 40.0, 500), field_max=14.0, rows=250,
         density_per_volt=float(ph.lever_arm_from_dielectric(285e-9, 3.9)),
         zero_density_voltage=4.0, temperature=1.7, broadening=2.5 * MEV, mobility=1.0,
-        residual_density=5e14, fermi_velocity=1.0e6, effective_mass=None, g_factor=0.0,
+        residual_density=2e15, fermi_velocity=1.0e6, effective_mass=None, g_factor=0.0,
         leakage_conductance=1e-8,
         broken_symmetry={0: 6.0, 1: 9.0, -1: 9.0, 4: 10.0, -4: 10.0, 3: 12.0, -3: 12.0,
                          5: 12.0, -5: 12.0},
-        fractional={}),
+        fractional=False),
     "graphene-bilayer": dict(
         gate=(-6.0, 6.0, 500), field_max=12.0, rows=250,
         density_per_volt=float(ph.lever_arm_from_dielectric(40e-9, 3.4)),
@@ -67,16 +68,14 @@ PRESETS = {
         leakage_conductance=1e-8,
         broken_symmetry={0: 2.5, 2: 5.0, -2: 5.0, 1: 8.0, -1: 8.0, 3: 8.0, -3: 8.0,
                          6: 10.0, -6: 10.0},
-        fractional={}),
+        fractional=False),
     "2deg": dict(
         gate=(-0.60, 0.30, 500), field_max=14.0, rows=250,
         density_per_volt=float(ph.lever_arm_from_dielectric(120e-9, 12.9)),
         zero_density_voltage=-0.75, temperature=0.05, broadening=0.08 * MEV, mobility=150.0,
         residual_density=0.0, fermi_velocity=None, effective_mass=0.067, g_factor=-0.44,
         leakage_conductance=1e-11,
-        broken_symmetry={1: 0.4, 3: 0.8, 5: 1.3, 7: 2.0},
-        fractional={Fraction(1, 3): 4.0, Fraction(2, 3): 4.0, Fraction(2, 5): 8.0,
-                    Fraction(3, 5): 8.0, Fraction(4, 3): 6.0, Fraction(5, 3): 6.0}),
+        broken_symmetry={1: 0.4, 3: 0.8, 5: 1.3, 7: 2.0}, fractional=True),
     "moire-graphene": dict(
         gate=(-6.0, 6.0, 500), field_max=8.0, rows=250,
         density_per_volt=float(ph.lever_arm_from_dielectric(30e-9, 3.4)),
@@ -84,7 +83,7 @@ PRESETS = {
         residual_density=1.5e14, fermi_velocity=None, effective_mass=0.3, g_factor=0.0,
         leakage_conductance=1e-8, twist_angle_deg=1.1, remote_mass=0.1,
         full_filling_gap=30 * MEV, correlated_gap=1.5 * MEV,
-        broken_symmetry={}, fractional={}),
+        broken_symmetry={}, fractional=False),
 }
 
 _KINDS = {"2deg": "2deg", "graphene-monolayer": "monolayer", "graphene-bilayer": "bilayer",
@@ -101,22 +100,21 @@ def _preset(material):
     return PRESETS[material]
 
 
-def _fractions(mapping):
-    return {Fraction(k): float(v) for k, v in mapping.items()}
-
-
 def _model(material, p, *, broadening, extended_fraction, effective_mass, g_factor,
-           fermi_velocity, broken_symmetry, fractional, twist_angle_deg, correlated_states):
+           fermi_velocity, broken_symmetry, twist_angle_deg, correlated_states,
+           residual_density=0.0):
     kind = _KINDS[material]
     kw = dict(kind=kind, broadening=broadening, extended_fraction=extended_fraction,
-              broken_symmetry={int(k): float(v) for k, v in broken_symmetry.items()},
-              fractional=_fractions(fractional))
+              broken_symmetry={int(k): float(v) for k, v in broken_symmetry.items()})
     if effective_mass is not None:
         kw["effective_mass"] = effective_mass
     if g_factor is not None:
         kw["g_factor"] = g_factor
     if fermi_velocity is not None:
         kw["fermi_velocity"] = fermi_velocity
+    if kind == "monolayer":
+        kw["puddle_energy"] = float(ph.dirac_fermi_energy(residual_density,
+                                                          kw.get("fermi_velocity", 1.0e6)))
     if kind == "moire":
         wavelength = ph.moire_wavelength(np.radians(twist_angle_deg))
         kw.update(cell_density=float(ph.moire_cell_density(wavelength)),
@@ -136,15 +134,20 @@ def _residuals(model, residual_density):
 
 
 def _conductivities(density, hall_density, scattering, field, model, *, mobility,
-                    residual_density, leakage, extra_residual=0.0):
-    """sigma_xx, sigma_xy (S) of each pixel (see the module docstring)."""
+                    residual_density, leakage, mobile=None):
+    """sigma_xx, sigma_xy (S) of each pixel (see the module docstring).
+
+    ``mobile`` (m^-2), if given, is the density of band carriers (electrons plus holes)
+    to use instead of the distance to the nearest gap.
+    """
     gaps, residual = _residuals(model, residual_density)
     nearest = np.argmin(np.abs(density[..., None] - gaps), axis=-1)
     n_gap, n_res = gaps[nearest], residual[nearest]
     if model.kind == "2deg":
         carriers = np.clip(density, 0, None)
     else:
-        carriers = np.sqrt((density - n_gap) ** 2 + n_res**2 + extra_residual**2)
+        band = density - n_gap if mobile is None else mobile
+        carriers = np.sqrt(band**2 + n_res**2)
     omega = mobility * abs(field)
     denom = scattering**2 + omega**2
     e = ph.ELEMENTARY_CHARGE
@@ -164,8 +167,8 @@ def _fan_fields(p, field, field_sign, zero_field_row, irregular_field, rng):
     if field is None:
         field = np.linspace(p["field_max"] / p["rows"], p["field_max"], p["rows"])
     field = np.asarray(field, dtype=float)
-    if field.ndim != 1 or field.size < 2 or not np.all(np.isfinite(field)):
-        raise InputError("field must be a 1-D array of at least two finite values in T")
+    if field.ndim != 1 or field.size < 1 or not np.all(np.isfinite(field)):
+        raise InputError("field must be a 1-D array of finite values in T")
     field = _realism.irregular_steps(field, rng, float(irregular_field))
     if field_sign == "both":
         field = np.concatenate([-np.abs(field)[::-1], np.abs(field)])
@@ -194,6 +197,7 @@ def simulate_fan(material="graphene-monolayer", *, gate=None, field=None,
                  extended_fraction=0.5, hall_fraction=0.35, mobility=None,
                  residual_density=None, effective_mass=None, g_factor=None,
                  fermi_velocity=None, broken_symmetry=None, fractional=None,
+                 composite_fermion_mass=0.14, composite_fermion_broadening=0.08 * MEV,
                  twist_angle_deg=None, correlated_states=True, quantum_capacitance=False,
                  aspect_ratio=2.0, leakage_conductance=None,
                  noise=0.002, noise_floor=0.5, correlated_noise=0.0, correlation_length=20.0,
@@ -230,8 +234,11 @@ def simulate_fan(material="graphene-monolayer", *, gate=None, field=None,
         Band parameters (mass in m_e, velocity in m/s).
     broken_symmetry : dict, optional
         Integer filling -> onset field (T); ``{}`` for none.
-    fractional : dict, optional
-        Filling ("2/3" or Fraction) -> onset field (T); ``{}`` for none.
+    fractional : bool, optional
+        2DEG: fractional states of the composite-fermion sequences
+        (:mod:`fanmap._fractional`); default on for ``"2deg"``.
+    composite_fermion_mass, composite_fermion_broadening : float
+        m_CF / m_e per sqrt(B / 1 T), and the composite-fermion level width (J).
     twist_angle_deg : float, optional
         Moire twist angle (degrees).
     correlated_states : bool
@@ -301,7 +308,15 @@ def simulate_fan(material="graphene-monolayer", *, gate=None, field=None,
                        else residual_density),
         leakage=float(p["leakage_conductance"] if leakage_conductance is None
                       else leakage_conductance),
+        composite_fermions=None,
     )
+    if fractional is None:
+        fractional = p["fractional"]
+    if fractional:
+        if material != "2deg":
+            raise InputError("fractional states are modelled for the 2deg preset only")
+        opts["composite_fermions"] = dict(mass_coefficient=float(composite_fermion_mass),
+                                          broadening=float(composite_fermion_broadening))
     if opts["temperature"] <= 0 or opts["broadening"] <= 0 or opts["mobility"] <= 0:
         raise InputError("temperature, broadening and mobility must be positive")
     if broadening_shape not in ("gaussian", "lorentzian"):
@@ -316,8 +331,8 @@ def simulate_fan(material="graphene-monolayer", *, gate=None, field=None,
                    else fermi_velocity,
                    broken_symmetry=p["broken_symmetry"] if broken_symmetry is None
                    else broken_symmetry,
-                   fractional=p["fractional"] if fractional is None else fractional,
-                   twist_angle_deg=twist, correlated_states=correlated_states)
+                   twist_angle_deg=twist, correlated_states=correlated_states,
+                   residual_density=opts["residual"])
 
     rows = field.size
     alternate = bool(hysteresis) if alternate_sweeps is None else bool(alternate_sweeps)
@@ -368,7 +383,8 @@ def simulate_fan(material="graphene-monolayer", *, gate=None, field=None,
         truth["g_factor"] = model.g_factor
     if model.kind == "monolayer":
         truth["fermi_velocity"] = model.fermi_velocity
-    truth.update(_visible_states(model, mat, field, density, opts["temperature"]))
+    truth.update(_visible_states(model, mat, field, density, opts["temperature"],
+                                 opts["composite_fermions"]))
     if model.kind == "moire":
         truth.update(_moire_truth(model, twist, field, density, opts["temperature"]))
 
@@ -395,6 +411,12 @@ def _row(model, field, density, opts, shape, hall_fraction):
     _, hall_density, scattering = evaluate(table, evaluated)
     if abs(field) < 1e-6:
         hall_density = evaluated
+    elif opts["composite_fermions"]:
+        flux = ph.flux_density_per_flavour(field)
+        factor, hall_filling = composite_fermion_transport(
+            evaluated / flux, field, opts["temperature"], **opts["composite_fermions"])
+        scattering = scattering * factor
+        hall_density = np.where(factor != 1, hall_filling * flux, hall_density)
     sxx, sxy = _conductivities(np.where(density > 0, evaluated, density)
                                if model.kind == "2deg" else density,
                                hall_density, scattering, field, model,
@@ -405,13 +427,18 @@ def _row(model, field, density, opts, shape, hall_fraction):
 
 # --- ground truth -------------------------------------------------------------------
 
-def _resolved_from(model, field, density, temperature, filling_density, gap_of_field):
+def _resolved_from(model, field, density, temperature, filling_density, gap_of_field,
+                   width_of_field=None):
     """Lowest |B| at which a gap ``gap_of_field(B)`` is resolved at density ``filling_density(B)``.
 
-    Resolved means gap >= ONSET_GAP_RATIO * sqrt(extended width^2 + (1.8 k_B T)^2) and the
-    density inside the row's sweep window.  Returns NaN if never.
+    Resolved means gap >= ONSET_GAP_RATIO * sqrt(width^2 + (1.8 k_B T)^2), the width being
+    the extended-state width unless ``width_of_field`` is given, and the density inside the
+    row's sweep window.  Returns NaN if never.
     """
     kt = ph.BOLTZMANN * temperature
+    if width_of_field is None:
+        def width_of_field(b):
+            return model.extended_fraction * model.width(b)
     best = np.nan
     for b, row in zip(field, density):
         if abs(b) < 1e-6:
@@ -419,13 +446,13 @@ def _resolved_from(model, field, density, temperature, filling_density, gap_of_f
         n = filling_density(abs(b))
         if not (row.min() <= n <= row.max()):
             continue
-        width = np.hypot(model.extended_fraction * model.width(b), 1.8 * kt)
+        width = np.hypot(width_of_field(b), 1.8 * kt)
         if gap_of_field(abs(b)) >= ONSET_GAP_RATIO * width:
             best = abs(b) if np.isnan(best) else min(best, abs(b))
     return best
 
 
-def _visible_states(model, mat, field, density, temperature):
+def _visible_states(model, mat, field, density, temperature, composite_fermions):
     out = {}
     sample = field[:: max(1, field.size // 60)]
     dens = density[:: max(1, field.size // 60)]
@@ -440,18 +467,28 @@ def _visible_states(model, mat, field, density, temperature):
             main.append(int(nu)), onsets.append(b_on)
     out["main_fillings"] = main
     out["main_onset_fields"] = onsets
-    for key, table in (("broken_symmetry", model.broken_symmetry),
-                       ("fractional", model.fractional)):
-        names, fields = [], []
-        for nu in sorted(table, key=lambda nu: (abs(nu), nu)):
-            b_on = _resolved_from(model, sample, dens, temperature,
-                                  lambda b, nu=nu: nu * ph.flux_density_per_flavour(b),
-                                  lambda b, nu=nu: model.gap_at(nu, b))
-            if np.isfinite(b_on):
-                names.append(nu), fields.append(b_on)
-        out[f"{key}_fillings"] = ",".join(str(Fraction(n)) for n in names) \
-            if key == "fractional" else [int(n) for n in names]
-        out[f"{key}_onset_fields"] = fields
+    names, fields = [], []
+    for nu in sorted(model.broken_symmetry, key=lambda nu: (abs(nu), nu)):
+        b_on = _resolved_from(model, sample, dens, temperature,
+                              lambda b, nu=nu: nu * ph.flux_density_per_flavour(b),
+                              lambda b, nu=nu: model.gap_at(nu, b))
+        if np.isfinite(b_on):
+            names.append(int(nu)), fields.append(b_on)
+    out["broken_symmetry_fillings"], out["broken_symmetry_onset_fields"] = names, fields
+    names, fields = [], []
+    for p, q in (fraction_sequence(4) if composite_fermions else []):
+        x = (p % q) / q
+        b_on = _resolved_from(
+            model, sample, dens, temperature,
+            lambda b, p=p, q=q: p / q * ph.flux_density_per_flavour(b),
+            lambda b, x=x: composite_fermion_energy(b, x, composite_fermions["mass_coefficient"]),
+            lambda b: composite_fermions["broadening"])
+        if np.isfinite(b_on):
+            names.append(f"{p}/{q}"), fields.append(b_on)
+    out["fractional_fillings"], out["fractional_onset_fields"] = ",".join(names), fields
+    if composite_fermions:
+        out["composite_fermion_mass"] = composite_fermions["mass_coefficient"]
+        out["composite_fermion_broadening"] = composite_fermions["broadening"]
     return out
 
 
@@ -538,7 +575,8 @@ def simulate_gate_map(material="graphene-bilayer", *, top_gate=None, bottom_gate
                       field=0.0, top_capacitance=None, bottom_capacitance=None,
                       top_offset=None, bottom_offset=None, hall=False, seed=0,
                       temperature=None, broadening=None, mobility=None,
-                      residual_density=None, puddle_energy=None, gap_screening=2.6,
+                      residual_density=None, puddle_energy=None, band_tail=3.0 * MEV,
+                      gap_screening=2.6,
                       broken_symmetry=None, aspect_ratio=2.0, leakage_conductance=None,
                       contact_resistance=0.0, noise=0.002, noise_floor=0.5,
                       correlated_noise=0.0, correlation_length=20.0, spikes=0,
@@ -549,9 +587,10 @@ def simulate_gate_map(material="graphene-bilayer", *, top_gate=None, bottom_gate
     :func:`fanmap.physics.dual_gate_displacement`.  In bilayer graphene the
     displacement field opens a gap at neutrality
     (:func:`fanmap._levels.bilayer_gap_from_displacement`); at B = 0 the
-    neutrality resistance then grows (thermal activation across the gap, puddle
-    conduction reduced as exp(-Delta / (2 E_puddle)), bounded by the leakage
-    conductance).  At finite field the nu = 0 gap is |Delta_spin(B) - Delta(D)|: the
+    neutrality resistance grows: the chemical potential enters localised band-tail
+    states (Gaussian tails of width ``band_tail``), only carriers beyond the band edges,
+    D_0 k_B T ln(1 + exp((|mu| - Delta/2) / k_B T)) per band, conduct, puddle conduction
+    falls as exp(-Delta / (2 E_puddle)), and the leakage conductance bounds R.  At finite field the nu = 0 gap is |Delta_spin(B) - Delta(D)|: the
     spin-polarised and layer-polarised states cross at one displacement, where the
     gap closes (Weitz et al., Science 330, 812 (2010), from memory).
 
@@ -593,7 +632,8 @@ def simulate_gate_map(material="graphene-bilayer", *, top_gate=None, bottom_gate
     d = ph.dual_gate_displacement(vt, vb, ct, cb, vt0, vb0)
     kind = _KINDS[material]
     base = SpectrumModel(kind=kind, broadening=broad, broken_symmetry=bs,
-                         effective_mass=fp["effective_mass"] or 0.033)
+                         effective_mass=fp["effective_mass"] or 0.033,
+                         zero_field_broadening=float(band_tail) if field == 0 else 0.0)
     kt = ph.BOLTZMANN * temperature
 
     def gap_of(disp):
@@ -608,15 +648,18 @@ def simulate_gate_map(material="graphene-bilayer", *, top_gate=None, bottom_gate
             model.extra_gaps = {0: abs(spin - gap)}
         dens = n[mask]
         table = row_table(model, field, (dens.min(), dens.max()), temperature)
-        _, hall_density, scattering = evaluate(table, dens)
+        mu, hall_density, scattering = evaluate(table, dens)
+        mobile = None
         if field == 0:
             hall_density = dens
-        dos = base.smooth_dos(np.inf) if kind == "bilayer" else 0.0
-        thermal = 2 * dos * kt * np.exp(-gap / (2 * kt)) if gap > 0 else 0.0
+            if kind == "bilayer":
+                edge = (np.abs(mu) - gap / 2) / kt
+                mobile = base.smooth_dos(np.inf) * kt * (
+                    np.logaddexp(0, edge) + np.logaddexp(0, -(np.abs(mu) + gap / 2) / kt))
         puddles = residual * np.exp(-gap / (2 * e_puddle))
         return _conductivities(dens, hall_density, scattering, field, model,
                                mobility=mobility, residual_density=puddles, leakage=leakage,
-                               extra_residual=thermal)
+                               mobile=mobile)
 
     # the spectrum depends on D: solve on D bins and interpolate linearly between them
     edges = np.linspace(d.min(), d.max(), max(int(displacement_bins), 2))
@@ -652,6 +695,7 @@ def simulate_gate_map(material="graphene-bilayer", *, top_gate=None, bottom_gate
     truth = dict(material=material, top_capacitance=ct, bottom_capacitance=cb,
                  top_offset=vt0, bottom_offset=vb0, field=field, temperature=temperature,
                  mobility=mobility, residual_density=residual, puddle_energy=e_puddle,
+                 band_tail=float(band_tail),
                  gap_screening=gap_screening, contact_resistance=contact_resistance,
                  degeneracy=get_material(material).degeneracy,
                  berry_phase=get_material(material).berry_phase, seed=seed)
