@@ -37,7 +37,7 @@ from .errors import InputError
 from .prepare import regrid_sweeps
 from .units import QUANTITY_NAMES, parse_quantity, parse_unit
 
-__all__ = ["open_map", "describe_map", "MAX_ABS_GATE", "MAX_ABS_FIELD"]
+__all__ = ["open_map", "open_maps", "describe_map", "MAX_ABS_GATE", "MAX_ABS_FIELD"]
 
 #: Gate voltages beyond this are taken as a unit mistake (common practice: back gates
 #: rarely exceed ~100-200 V).
@@ -58,6 +58,7 @@ class _Context:
     options: dict
     recognised: list = _dc_field(default_factory=list)
     reasons: dict = _dc_field(default_factory=dict)
+    units_read: dict = _dc_field(default_factory=dict)  # name in the map -> (units as read, origin)
 
     def note(self, text):
         self.recognised.append(text)
@@ -334,6 +335,7 @@ def _axis_factor(raw, name, axis, ctx):
     if unit_text is None:
         si = "T" if quantity == "field" else "V"
         ctx.note(f"units of {name!r}: none in the file, assumed {si} (set {flag})")
+        ctx.units_read[axis] = ("", origin)
         return 1.0, si
     try:
         unit = parse_unit(unit_text, where=f"{name!r}")
@@ -345,6 +347,7 @@ def _axis_factor(raw, name, axis, ctx):
                         f"label is wrong, or choose the axis with --{axis.replace('_', '-')} NAME")
     if origin == "option" or unit.factor != 1.0:
         ctx.note(f"units of {name!r}: {unit_text} ({origin}) -> {'T' if quantity == 'field' else 'V'}")
+    ctx.units_read[axis] = (unit_text, origin)
     return unit.factor, unit_text
 
 
@@ -406,6 +409,7 @@ def _signal_to_ohm(values, raw, name, role, ctx, current, other=None):
     flag = "--" + opt.replace("_", "-")
     unit_text, origin = _units_of(raw, name, ctx, ctx.options[opt])
     attrs = {}
+    ctx.units_read[role] = (unit_text or "", origin)
     if unit_text is None:
         ctx.note(f"units of {name!r}: none in the file, assumed ohm (set {flag})")
         return values, attrs
@@ -783,12 +787,13 @@ def _finish(ds, raw, info, scalars, names, ctx):
         if role == _CURRENT:
             continue
         ds[role].attrs["original_name"] = name
-        unit = raw[name].attrs.get("units")
-        if unit:
-            ds[role].attrs["original_units"] = str(unit)
         if ds[role].attrs.get("sheet_resistivity"):
             ds[role].attrs["long_name"] = S.LONG_NAMES[role].replace("resistance", "resistivity") \
                 + " (per square)"
+    for var, (unit_text, origin) in ctx.units_read.items():
+        if var in ds.variables:
+            ds[var].attrs["original_units"] = unit_text or "(none: SI assumed)"
+            ds[var].attrs["units_from"] = origin or "assumed"
     if kind == S.GATES:
         value = _scalar_field(raw, scalars, info, ctx)
         if value is not None:
@@ -825,6 +830,51 @@ def _validate(ds, kind, ctx):
             if ds.sizes[axis] < 2:
                 raise ctx.error(f"only one {axis.replace('_', ' ')} value: a gate map needs two swept "
                                 "gates; check --top-gate and --bottom-gate")
+
+
+# --- several files ---------------------------------------------------------------
+
+def open_maps(paths, **options):
+    """Open several map files with the same options and check that their units agree.
+
+    Files whose axes or signals carried no units (SI assumed) cannot be
+    mixed with files that gave other units for the same quantity: the
+    assumption is then doubtful, and an :class:`InputError` names both files
+    and the option that settles it.  Explicit, different units (mV in one
+    file, V in another) are fine: each map is converted to SI.
+
+    Returns
+    -------
+    list of xarray.Dataset
+    """
+    maps = [open_map(path, **options) for path in paths]
+    flags = {S.FIELD: "--field-units", S.GATE: "--gate-units", S.TOP_GATE: "--gate-units",
+             S.BOTTOM_GATE: "--gate-units", S.RXX: "--signal-units", S.RXY: "--hall-units"}
+    for var, flag in flags.items():
+        explicit, assumed = {}, []
+        for ds in maps:
+            if var not in ds.variables or "units_from" not in ds[var].attrs:
+                continue
+            if ds[var].attrs["units_from"] == "assumed":
+                assumed.append(ds.attrs["source"])
+            else:
+                explicit.setdefault(ds[var].attrs["original_units"], ds.attrs["source"])
+        si = S.UNITS[var]
+        others = {u: src for u, src in explicit.items() if _factor_or_none(u) != 1.0}
+        if assumed and others:
+            unit, source = next(iter(others.items()))
+            raise InputError(
+                f"mixed units across files: {var.replace('_', ' ')} is in {unit} in {source} but has "
+                f"no units in {assumed[0]} (read as {si}); set {flag} for the files without units, "
+                "or add the units to their headers")
+    return maps
+
+
+def _factor_or_none(unit_text):
+    try:
+        return parse_unit(unit_text).factor
+    except InputError:
+        return None
 
 
 # --- description ------------------------------------------------------------------

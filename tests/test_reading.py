@@ -765,3 +765,18 @@ def test_per_row_gate_values_in_netcdf_are_regridded(tmp_path):
     expected = 500.0 + 40.0 * read.gate.values[inner] + 3.0 * read.field.values[:, None]
     np.testing.assert_allclose(read.rxx.values[:, inner], expected, rtol=1e-9)
     assert "differs from sweep to sweep" in read.attrs["recognised"]
+
+
+def test_mixed_units_across_files(tmp_path):
+    from fanmap.reading import open_maps
+    fan = hand_fan(n_field=3, n_gate=9)
+    with_units = write_long(tmp_path / "a.csv", fan, header=["B (T)", "Vg (mV)", "Rxx (ohm)", "Rxy (ohm)"],
+                            scale={"B": 1, "Vg": 1e2, "Rxx": 1, "Rxy": 1})
+    without = write_long(tmp_path / "b.csv", fan, header=["B (T)", "Vg", "Rxx (ohm)", "Rxy (ohm)"],
+                         scale={"B": 1, "Vg": 1e2, "Rxx": 1, "Rxy": 1})
+    with pytest.raises(InputError, match="mixed units across files.*--gate-units"):
+        open_maps([with_units, without])
+    both = open_maps([with_units, without], units={"Vg": "mV"})
+    np.testing.assert_allclose(both[0].gate.values, both[1].gate.values)
+    volts = write_long(tmp_path / "c.csv", fan)
+    assert len(open_maps([with_units, volts])) == 2  # explicit and different: converted, fine
