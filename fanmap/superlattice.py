@@ -222,8 +222,11 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
                    if st.kind != "satellite"]
 
     free = _unassigned_points(points, main_states, scale)
-    lines = _find_offset_lines(points, free, scale, gate, fields, max_slope)
-    lattice = _fit_lattice(lines, scale, flavours, max_band_filling, notes)
+    onsets = [st.field_min for _, st in main_states if np.isfinite(st.field_min)]
+    lines = _find_offset_lines(points, free, scale, gate, fields, max_slope,
+                               min(onsets) if onsets else 0.0)
+    lattice = _fit_lattice(lines, scale, flavours, max_band_filling, notes,
+                           one_sided_main=_one_sided(main_states))
 
     rng = np.random.default_rng(seed)
     superlattice = None
@@ -352,15 +355,30 @@ def _unassigned_points(points, main_states, scale):
     return free
 
 
+def _one_sided(main_states):
+    """+1 or -1 when the main fan's lines run (almost) all to one side, else 0.
+
+    A fan from charge neutrality is ambipolar; one that runs from a band edge
+    into a remote band has most of its lines on the outward side.
+    """
+    signs = [np.sign(_filling_number(st.filling) or 0) for _, st in main_states
+             if st.kind in _MAIN_KINDS]
+    up, down = signs.count(1), signs.count(-1)
+    if max(up, down) >= 2 and 3 * min(up, down) <= max(up, down):
+        return 1 if up > down else -1
+    return 0
+
+
 # --- satellite lines -----------------------------------------------------------------
 
-def _find_offset_lines(points, free, scale, gate, fields, max_slope):
+def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=0.0):
     """Straight lines with integer Landau slope t whose intercept is off the fan origin.
 
     Every free ridge point votes, for each trial t, for the B = 0 intercept
     u = V - t B / (alpha h/e) of the line of slope t through it; points on
     one line pile up in one bin, points of other lines smear out.  The
     strongest pile is fitted as a free line, its points claimed, and so on.
+    ``main_onset`` is the lowest field at which the main fan resolves a line.
     """
     b, v, row = points["field"], points["gate"], points["row"]
     k = scale.volts_per_tesla
@@ -369,8 +387,8 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope):
     row_fields = np.unique(np.abs(fields[fields != 0]))
     n_rows = row_fields.size
     span = np.ptp(np.abs(fields))
-    min_points = max(8, int(0.12 * n_rows))
-    min_span = 0.2 * span
+    min_points = max(8, int(0.06 * n_rows))
+    min_span = 0.12 * span
     origin_tol = 4.0 * step
 
     gate_lo, gate_hi = np.min(gate), np.max(gate)
@@ -419,6 +437,9 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope):
             continue
         if line["rms"] > 0.6 * step:
             continue   # not straight: a background valley or a chain of crossings
+        if line["field_min"] < 0.25 * main_onset:
+            continue   # a minimum that persists to far below where any Landau level is
+            # resolved is a valley between zero-field peaks, not a Landau gap
         line["t"] = t
         line["intercept_density"] = scale.alpha * (line["intercept"] - scale.v0)
         line["intercept_density_stderr"] = abs(scale.alpha) * line["intercept_stderr"]
@@ -504,7 +525,7 @@ def _intercept_tol(line, scale):
     return max(3 * line["intercept_density_stderr"], 1.5 * abs(scale.alpha) * scale.gate_step)
 
 
-def _fit_lattice(lines, scale, flavours, max_band_filling, notes):
+def _fit_lattice(lines, scale, flavours, max_band_filling, notes, one_sided_main=0):
     """Choose n0 (and s per family) so that every intercept is a multiple s n0.
 
     The real-number GCD is ambiguous by integer factors; the outermost
@@ -514,7 +535,9 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes):
     families (with the main fan) form the symmetric pattern -flavours ...
     +flavours about another point, the main fan fit took a satellite family
     for its origin, and neutrality is that point.  Only when both fail does
-    the plain GCD (largest n0 that fits) decide.
+    the plain GCD (largest n0 that fits) decide.  A main fan whose lines all
+    have one sign (``one_sided_main``) is itself a hint that its origin is a
+    band edge rather than neutrality, which is ambipolar.
     """
     if len(lines) < 2:
         return None
@@ -557,9 +580,15 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes):
         return None
     pool = [h for h in through_origin if h["explained"] >= 0.999 * best]
     chosen = next((h for h in pool if h["k"] == flavours), None)
+    shifted = [h for h in evaluated if h["origin"] != 0.0 and h["full_sides"] == 2
+               and h["explained"] >= 0.999 * best]
+    if one_sided_main and chosen is not None:
+        # keep the shifted lattice only if the main fan's lines run outwards from a band edge
+        shifted = [h for h in shifted if abs(h["main_s"]) == flavours
+                   and np.sign(h["main_s"]) == one_sided_main]
+        if shifted:
+            chosen = None
     if chosen is None:
-        shifted = [h for h in evaluated if h["origin"] != 0.0 and h["full_sides"] == 2
-                   and h["explained"] >= 0.999 * best]
         if shifted:
             chosen = shifted[0]
             notes.append(f"the main fan fit's origin is the s = {chosen['main_s']:+d} satellite "
