@@ -168,6 +168,20 @@ def _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance
         & (observed >= expected + 4 * np.sqrt(expected))
 
 
+def _best_origin(gate_pts, field_pts, votes, gate, bin_width):
+    """Zero-density voltage that makes the minima vote most sharply (coarse then fine scan).
+
+    The scan covers the gate window and one window width on either side, so an origin
+    outside the measured range (a 2DEG's depletion voltage) is found too.
+    """
+    span = gate[-1] - gate[0]
+    coarse = np.linspace(gate[0] - span, gate[-1] + span, 241)
+    best = coarse[np.argmax(vote_origin(gate_pts, field_pts, votes, coarse, bin_width))]
+    d = coarse[1] - coarse[0]
+    fine = np.linspace(best - 2 * d, best + 2 * d, 41)
+    return fine[np.argmax(vote_origin(gate_pts, field_pts, votes, fine, bin_width))]
+
+
 def _merge_close(slopes, distance):
     """Drop vote peaks within ``distance`` of a stronger one (``slopes`` strongest first)."""
     kept = []
@@ -266,13 +280,19 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     votes /= np.max(votes)
     b_ref = np.percentile(minima.field, 75)
     bin_width = 0.7 * step / b_ref
-    coarse = np.linspace(gate[0] - span, gate[-1] + span, 301)
-    scores = vote_origin(minima.gate, minima.field, votes, coarse, bin_width)
-    best = coarse[np.argmax(scores)]
-    fine = np.linspace(best - 2 * (coarse[1] - coarse[0]), best + 2 * (coarse[1] - coarse[0]), 81)
-    v0 = fine[np.argmax(vote_origin(minima.gate, minima.field, votes, fine, bin_width))]
+    dir_rows = direction if direction is not None else np.zeros(n_rows)
+    # Each sweep direction votes for its own origin (hysteresis would split every line).
+    origin_rows = np.empty(n_rows)
+    for sign in ((1, -1) if direction is not None else (0,)):
+        rows_of_sign = dir_rows == sign if sign else np.ones(n_rows, bool)
+        pts = rows_of_sign[minima.row]
+        if pts.sum() < 2 * _MIN_LINE_POINTS:
+            raise NoFanError("too few R_xx minima in one sweep direction to find the fan")
+        origin_rows[rows_of_sign] = _best_origin(minima.gate[pts], minima.field[pts], votes[pts],
+                                                 gate, bin_width)
     min_votes = _MIN_LINE_POINTS * np.median(votes)
-    slopes = vote_slopes((minima.gate - v0) / minima.field, votes, bin_width, min_votes)
+    slopes = vote_slopes((minima.gate - origin_rows[minima.row]) / minima.field, votes,
+                         bin_width, min_votes)
     # Lines of (nearly) zero slope stay at V0 at every field: the neutrality ridge, not a state.
     slopes = slopes[np.abs(slopes) * b_abs.max() > 3 * step]
     slopes = _merge_close(slopes, 3 * step / b_abs.max())
@@ -281,8 +301,6 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
                          "shows no Landau fan (or too few resolved states to fit one)")
 
     use_hysteresis = direction is not None
-    dir_rows = direction if direction is not None else np.zeros(n_rows)
-    origin_rows = np.full(n_rows, v0)
     residual_scale = step
     satellite = np.zeros(0, int)
     line = np.full(len(minima), -1)

@@ -169,6 +169,8 @@ def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, hall_slopes=No
 
     Priority: R_xy plateaus, resolved broken-symmetry states spaced by one, the
     material preset, a dielectric lever-arm prior.  ``g`` is None when none decides.
+    Broken-symmetry states decide only when they split the main spacing into quarters or
+    finer (a split into halves fits g = 2 fully split as well as g = 4 half split).
 
     Parameters
     ----------
@@ -219,15 +221,21 @@ def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, hall_slopes=No
     extra = np.asarray(extra_slopes, float)
     extra_err = np.asarray(extra_stderr, float)
     broken = None
+    halves = False
     if extra.size >= 2:
-        # Largest g whose grid u/g holds at least two off-sequence lines that a coarser grid does not.
+        # Largest g whose grid u/g holds at least two off-sequence lines that a coarser grid
+        # does not.  A grid of u/2 alone cannot tell a fully split twofold level from a
+        # half-split fourfold one, so only a quarter (or finer) grid fixes the scale.
         for g in DEGENERACIES[::-1]:
             tol = np.maximum(0.06, 3 * extra_err * g / unit)
             fine = _on_grid(extra * g / unit, 0.0, tol)
             coarse = (_on_grid(extra * (g // 2) / unit, 0.0, tol) if g > 1
                       else np.zeros_like(fine))
             if (fine & ~coarse).sum() >= 2:
-                broken = g
+                if g >= 4:
+                    broken = g
+                else:
+                    halves = g == 2
                 break
     if broken is not None:
         if preset.degeneracy is not None and preset.degeneracy != broken:
@@ -235,6 +243,10 @@ def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, hall_slopes=No
                             f"material {material!r} has {preset.degeneracy}; using the preset")
             return preset.degeneracy, "material", warnings
         return broken, "broken-symmetry", warnings
+    if halves and preset.degeneracy is None:
+        warnings.append("states off the main sequence halve its spacing: a fully split "
+                        "twofold level and a half-split fourfold one look alike, so they do "
+                        "not fix the scale")
     if preset.degeneracy is not None:
         if preset.offset is not None and abs(preset.offset - gamma) > 0.1:
             warnings.append(f"the main sequence has offset gamma = {gamma:g}, but material "
@@ -251,14 +263,15 @@ def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, hall_slopes=No
 
 
 def classify_fillings(measured, stderr, degeneracy, gamma, *, on_main=None, max_denominator=9,
-                      significance=5.0):
+                      significance=5.0, max_fractional=5.0):
     """Name each line from its measured filling nu = k s.
 
     A line on the main grid g (N + gamma) is ``integer``; another integer is
     ``broken-symmetry``; a line significantly off every integer (by more than
     ``significance`` standard errors and 0.04) is ``fractional`` if it lies on a simple
     fraction p/q: the smallest odd q <= ``max_denominator`` within max(3 sigma, 0.015),
-    else the smallest even q within max(sigma, 0.005).  Anything else is
+    else the smallest even q within max(sigma, 0.005).  Fractions are looked for only
+    below |nu| = ``max_fractional`` (fractional states are a low-filling phenomenon).  Anything else is
     unexplained (kind None).
 
     Lines flagged in ``on_main`` (already on the main-sequence grid) take the nearest
@@ -297,7 +310,7 @@ def classify_fillings(measured, stderr, degeneracy, gamma, *, on_main=None, max_
             kinds.append("integer" if main_state else "broken-symmetry")
             distance.append(None)
             continue
-        if abs(nu - nearest) > max(significance * err, 0.04):
+        if abs(nu - nearest) > max(significance * err, 0.04) and abs(nu) < max_fractional:
             # The simplest fraction within reach: odd denominators first, even ones only
             # when very close (they are rare and need strong evidence).
             found = None

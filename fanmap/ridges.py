@@ -294,38 +294,39 @@ def link_traces(minima, tolerance, min_points=3):
     boundaries = np.flatnonzero(np.diff(rows_in_order)) + 1
     groups = np.split(order, boundaries) if order.size else []
     trace = np.full(len(minima), -1)
-    ends = []  # per trace: [last gate, last field, slope, rows since last seen]
+    n = len(minima)
+    last_gate, last_field = np.zeros(n), np.zeros(n)
+    slope, missed = np.zeros(n), np.zeros(n, int)
+    alive = np.zeros(0, int)   # traces seen within the last two rows
+    count = 0
     for group in groups:
         positions = minima.gate[group]
         b = minima.field[group[0]]
         taken = np.zeros(group.size, bool)
-        if ends:
-            state = np.array(ends)
-            predicted = state[:, 0] + state[:, 2] * (b - state[:, 1])
+        continued = np.zeros(alive.size, bool)
+        if alive.size:
+            predicted = last_gate[alive] + slope[alive] * (b - last_field[alive])
             distance = np.abs(predicted[:, None] - positions[None, :])
-            alive = state[:, 3] <= 2
-            distance[~alive] = np.inf
             pairs = np.argwhere(distance < tolerance)
             pairs = pairs[np.argsort(distance[pairs[:, 0], pairs[:, 1]])]
-            used = np.zeros(len(ends), bool)
-            for t, k in pairs:
-                if used[t] or taken[k]:
+            for a, k in pairs:
+                if continued[a] or taken[k]:
                     continue
-                used[t] = taken[k] = True
-                last_gate, last_field = ends[t][0], ends[t][1]
-                slope = ((positions[k] - last_gate) / (b - last_field)
-                         if b > last_field else ends[t][2])
-                ends[t] = [positions[k], b, slope, 0]
-                trace[group[k]] = t
-            for t in range(len(ends)):
-                if not used[t]:
-                    ends[t][3] += 1
-        for k in np.flatnonzero(~taken):
-            trace[group[k]] = len(ends)
-            ends.append([positions[k], b, 0.0, 0])
+                continued[a] = taken[k] = True
+                t_id = alive[a]
+                if b > last_field[t_id]:
+                    slope[t_id] = (positions[k] - last_gate[t_id]) / (b - last_field[t_id])
+                last_gate[t_id], last_field[t_id], missed[t_id] = positions[k], b, 0
+                trace[group[k]] = t_id
+            missed[alive[~continued]] += 1
+        new = np.arange(count, count + int((~taken).sum()))
+        trace[group[~taken]] = new
+        last_gate[new], last_field[new], slope[new], missed[new] = positions[~taken], b, 0.0, 0
+        count += new.size
+        alive = np.concatenate([alive[missed[alive] <= 2], new])
     labels, counts = np.unique(trace[trace >= 0], return_counts=True)
     good = labels[counts >= min_points]
-    remap = np.full(len(ends) + 1, -1)
+    remap = np.full(count + 1, -1)
     remap[good] = np.arange(good.size)
     minima.trace = remap[trace]
     return int(good.size)
@@ -335,7 +336,8 @@ def _vote_histogram(slopes, votes, bin_width, lo, hi):
     edges_n = int(np.ceil((hi - lo) / bin_width)) + 1
     index = np.clip(((slopes - lo) / bin_width).astype(int), 0, edges_n - 1)
     hist = np.bincount(index, weights=votes, minlength=edges_n)
-    return ndimage.gaussian_filter1d(hist, 1.0)
+    # A short binomial kernel (about one bin wide) spreads each vote over its neighbours.
+    return np.convolve(hist, [0.25, 0.5, 0.25], mode="same")
 
 
 def vote_origin(gate, field, votes, candidates, bin_width):

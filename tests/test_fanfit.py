@@ -57,16 +57,15 @@ def test_bilayer_hall_gives_berry_phase_two_pi():
     assert _fillings(r) == sorted(str(f) for f in BILAYER)
 
 
-def test_2deg_spin_split_states_fix_the_scale_and_origin_outside_window():
+def test_2deg_spin_split_states_and_origin_outside_window():
     # Spin-degenerate 2N at low field, odd (spin-split) states above 3 T; depletion voltage
     # below the window (von Klitzing et al., PRL 45, 494 (1980) for the 2N sequence).
     odd = (1, 3, 5, 7, 9)
     fillings = tuple(range(2, 26, 2)) + odd
     ds = handbuilt_fan(fillings, alpha=3.0e15, v0=-0.8, gate=(0.0, 1.0, 200), field=(0.5, 10, 150),
                        onsets={f: 3.0 for f in odd}, width=0.12, decades=1.0)
-    r = fit_fan(ds, bootstrap=0)
-    assert r.scale_from == "broken-symmetry"
-    assert (r.degeneracy, r.berry_phase) == (2, 0)
+    r = fit_fan(ds, material="2deg", bootstrap=0)
+    assert (r.degeneracy, r.berry_phase, r.scale_from) == (2, 0, "material")
     assert r.density_per_volt == pytest.approx(3.0e15, rel=3e-3)
     assert abs(r.zero_density_voltage + 0.8) < 0.003
     kinds = {s.filling: s.kind for s in r.states}
@@ -74,6 +73,13 @@ def test_2deg_spin_split_states_fix_the_scale_and_origin_outside_window():
     assert any("outside the gate window" in w for w in r.warnings)
     onset = {s.filling: s.onset_field for s in r.states}
     assert onset["3"] > 2.9 > onset["10"]
+    # Without the preset, states that halve the spacing cannot tell g = 2 (fully split)
+    # from g = 4 (half split): the honest answer lists both.
+    r = fit_fan(ds, bootstrap=0)
+    assert r.scale_from == "ambiguous"
+    cands = {c["degeneracy"]: c["density_per_volt"] for c in r.scale_candidates}
+    assert cands[2] == pytest.approx(3.0e15, rel=3e-3)
+    assert any("halve" in w for w in r.warnings)
 
 
 def test_ambiguous_scale_lists_candidates_including_truth():
@@ -128,11 +134,11 @@ def test_fractional_states_found_with_nearest_fraction():
     fillings = (1, 2, 3, 4, 5, 6, 8, 10, 12, 1 / 3, 2 / 3)
     ds = handbuilt_fan(fillings, alpha=2.0e15, v0=0.1, gate=(0.0, 4.0, 300), field=(1.0, 12.0, 160),
                        onsets={1 / 3: 7.0, 2 / 3: 7.0, 1: 3.0, 3: 3.0, 5: 3.0}, width=0.08)
-    r = fit_fan(ds, bootstrap=0)
+    r = fit_fan(ds, material="2deg", bootstrap=0)
     fractional = {s.filling: s for s in r.states if s.kind == "fractional"}
     assert set(fractional) == {"1/3", "2/3"}
     assert all(s.distance_to_fraction_sigma is not None and s.onset_field > 6 for s in fractional.values())
-    assert (r.degeneracy, r.scale_from) == (2, "broken-symmetry")
+    assert r.degeneracy == 2
     assert r.density_per_volt == pytest.approx(2.0e15, rel=3e-3)
 
 
