@@ -412,6 +412,11 @@ def _signal_to_ohm(values, raw, name, role, ctx, current, other=None):
     ctx.units_read[role] = (unit_text or "", origin)
     if unit_text is None:
         ctx.note(f"units of {name!r}: none in the file, assumed ohm (set {flag})")
+        biggest = np.nanmax(np.abs(values)) if np.size(values) else np.nan
+        biggest = float(biggest.compute() if hasattr(biggest, "compute") else biggest)
+        if biggest < 1e-2:
+            ctx.note(f"warning: {name!r} never exceeds {biggest:.3g}, tiny for ohm: if it is a "
+                     f"conductance (S, e^2/h) or a lock-in voltage, set {flag}")
         return values, attrs
     try:
         unit = parse_unit(unit_text, where=f"{name!r}")
@@ -886,7 +891,7 @@ def _axis_line(ds, name):
         return f"  {name}: {float(values):.6g} {units} (scalar)"
     finite = values[np.isfinite(values)]
     steps = np.diff(values)
-    regular = finite.size > 2 and np.allclose(steps, steps[0], rtol=1e-3, atol=0)
+    regular = steps.size < 2 or np.allclose(steps, steps[0], rtol=1e-3, atol=0)
     step = f"step {np.median(steps):.4g} {units}" + ("" if regular else " (irregular)") \
         if steps.size else "single value"
     return (f"  {name}: {values.size} values from {values[0]:.6g} to {values[-1]:.6g} {units}, {step}")
@@ -917,10 +922,10 @@ def describe_map(ds):
         lines.append(f"  sweep_direction: {int((d > 0).sum())} rows up, {int((d < 0).sum())} rows down")
     lines.append("signals:")
     for name, var in ds.data_vars.items():
-        values = np.asarray(var.values, dtype=float)
-        finite = values[np.isfinite(values)]
-        span = (f"{finite.min():.4g} to {finite.max():.4g}" if finite.size else "all NaN")
-        nan = values.size - finite.size
+        # reductions stream through a lazily opened map instead of loading it
+        low, high = float(var.min(skipna=True)), float(var.max(skipna=True))
+        nan = int(var.isnull().sum())
+        span = f"{low:.4g} to {high:.4g}" if np.isfinite(low) else "all NaN"
         lines.append(f"  {name}: {var.attrs.get('long_name', '')} [{var.attrs.get('units', '?')}], "
                      f"{span}" + (f", {nan} NaN" if nan else "")
                      + (f" (from {var.attrs['original_name']!r})" if "original_name" in var.attrs else ""))

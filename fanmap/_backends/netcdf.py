@@ -7,12 +7,15 @@ never held in memory twice.
 
 import os
 
+import dask
 import xarray as xr
 
 from ..errors import InputError
 
 #: Files above this size are opened lazily by default.
 LAZY_BYTES = 256 * 2**20
+#: Target size of one dask chunk: a few of them in flight per core stay far below one map.
+CHUNK_BYTES = "32MiB"
 
 _HDF5_MAGIC = b"\x89HDF\r\n\x1a\n"
 _CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02", b"CDF\x05")
@@ -55,8 +58,9 @@ def read_netcdf(path, *, lazy=None, engine=None):
     problems = []
     for name in engines:
         try:
-            ds = xr.open_dataset(path, engine=name, chunks={} if lazy else None,
-                                 decode_times=False, mask_and_scale=True, cache=False)
+            with dask.config.set({"array.chunk-size": CHUNK_BYTES}):
+                ds = xr.open_dataset(path, engine=name, chunks="auto" if lazy else None,
+                                     decode_times=False, mask_and_scale=True, cache=False)
         except Exception as exc:  # noqa: BLE001 - any library failure means "unreadable file"
             problems.append(f"{name}: {type(exc).__name__}: {str(exc)[:120]}")
             continue
