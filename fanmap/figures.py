@@ -29,7 +29,9 @@ from fractions import Fraction
 import numpy as np
 from matplotlib.colors import LogNorm, Normalize
 from matplotlib.figure import Figure
+from matplotlib.image import NonUniformImage
 from matplotlib.lines import Line2D
+from matplotlib.ticker import FuncFormatter
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib import rc_context
 from matplotlib.transforms import blended_transform_factory
@@ -37,7 +39,7 @@ from matplotlib.transforms import blended_transform_factory
 from . import _schema as S
 from . import _style
 from .errors import InputError
-from .physics import VACUUM_PERMITTIVITY, filling_from_density
+from .physics import FLUX_QUANTUM_SINGLE_ELECTRON, VACUUM_PERMITTIVITY, filling_from_density
 
 __all__ = [
     "state_label", "colour_scale", "plot_fan", "plot_filling_map", "plot_density_map",
@@ -47,16 +49,31 @@ __all__ = [
 
 #: Densities on figure axes are in units of 10^12 cm^-2 = 10^16 m^-2.
 DENSITY_UNIT = 1e16
-_DENSITY_LABEL = r"density $n$ ($10^{12}$ cm$^{-2}$)"
+_DENSITY_LABEL = "density n (10¹² cm⁻²)"
 _UNIT_TEXT = {"ohm": "Ω", "Ohm": "Ω", "ohms": "Ω", "V": "V", "T": "T"}
 
 
 # --- small helpers -------------------------------------------------------------
 
-def _new_figure(width, height):
-    fig = Figure(figsize=(width, height), layout="constrained")
+def _new_figure(width, height, layout="constrained"):
+    fig = Figure(figsize=(width, height), layout=layout)
     FigureCanvasAgg(fig)
     return fig
+
+
+def _map_figure(width, height, top=0.6):
+    """A figure with one map axes and its colour bar at fixed places (sizes in inches).
+
+    A fixed layout leaves room above the axes for two rows of line labels and
+    is much quicker to draw than a layout engine that measures every text.
+    """
+    fig = _new_figure(width, height, layout=None)
+    left, bottom, right, bar_gap, bar_width = 0.75, 0.55, 1.3, 0.1, 0.13
+    ax = fig.add_axes([left / width, bottom / height, (width - left - right) / width,
+                       (height - bottom - top) / height])
+    cax = fig.add_axes([(width - right + bar_gap) / width, bottom / height, bar_width / width,
+                        (height - bottom - top) / height])
+    return fig, ax, cax
 
 
 def _text_minus(text):
@@ -174,14 +191,71 @@ def colour_scale(values, scale="auto"):
     return values, Normalize(vmin=lo, vmax=hi if hi > lo else lo + 1), "linear"
 
 
+_SUPERSCRIPTS = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+
+
+def _power_of_ten(value, _position=None):
+    """Tick text 10ⁿ in plain Unicode (no mathtext: much quicker to lay out)."""
+    if value <= 0:
+        return ""
+    exponent = math.log10(value)
+    if abs(exponent - round(exponent)) > 1e-9:
+        return ""
+    return "10" + str(int(round(exponent))).translate(_SUPERSCRIPTS)
+
+
+def _colour_bar(fig, mesh, cax, label, ax=None):
+    bar = (fig.colorbar(mesh, cax=cax) if cax is not None
+           else fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.06))
+    if isinstance(mesh.norm, LogNorm):
+        bar.ax.yaxis.set_major_formatter(FuncFormatter(_power_of_ten))
+        bar.ax.yaxis.set_minor_formatter(FuncFormatter(lambda *_: ""))
+    bar.set_label(label)
+    return bar
+
+
 def _colour_bar_label(da, scale):
-    symbol = {S.RXX: r"$R_{xx}$", S.RXY: r"$R_{xy}$"}.get(da.name, str(da.name))
+    symbol = {S.RXX: "Rₓₓ", S.RXY: "R_xy"}.get(da.name, str(da.name))
     name = da.attrs.get("long_name", "")
     if scale == "row":
         return f"{symbol} / row median" + (f"  ({name})" if name else "")
     units = _units_text(da.attrs)
     text = f"{name} {symbol}" if name else symbol
     return f"{text} ({units})" if units else text
+
+
+def _uniform(values):
+    steps = np.diff(values)
+    return values.size > 1 and np.all(steps > 0) and np.ptp(steps) <= 1e-3 * abs(steps.mean())
+
+
+def _half_step_edges(values):
+    step = (values[-1] - values[0]) / (values.size - 1) if values.size > 1 else 1.0
+    first = values[1] - values[0] if values.size > 1 else step
+    last = values[-1] - values[-2] if values.size > 1 else step
+    return values[0] - first / 2, values[-1] + last / 2
+
+
+def _image(ax, x, y, values, norm, cmap):
+    """Draw ``values`` (rows along y) on centre coordinates ``x``, ``y`` as an image.
+
+    An image is far quicker to draw and much smaller in a PDF than a mesh of
+    cells; a non-uniform image keeps irregular field steps in place.  Only
+    coordinates that do not increase strictly (repeated fields) need a mesh.
+    """
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    if x.size < 2 or y.size < 2 or not (np.all(np.diff(x) > 0) and np.all(np.diff(y) > 0)):
+        return ax.pcolormesh(x, y, values, norm=norm, cmap=cmap, shading="nearest",
+                             rasterized=True)
+    extent = (*_half_step_edges(x), *_half_step_edges(y))
+    if _uniform(x) and _uniform(y):
+        return ax.imshow(values, origin="lower", extent=extent, aspect="auto",
+                         interpolation="nearest", norm=norm, cmap=cmap)
+    image = NonUniformImage(ax, interpolation="nearest", extent=extent, norm=norm, cmap=cmap)
+    image.set_data(x, y, np.ma.masked_invalid(values))
+    ax.add_image(image)
+    return image
 
 
 def _state_gate(state, field):
@@ -224,7 +298,6 @@ def _place_top_labels(fig, ax, positions, texts, kinds):
     """
     transform = blended_transform_factory(ax.transData, ax.transAxes)
     order = np.argsort(positions)
-    fig.draw_without_rendering()       # settles the layout so that label widths are final
     renderer = fig.canvas.get_renderer()
     size = _style.FONT_SIZE - 1
     fonts = [{"fontsize": size, "color": "#111111",
@@ -240,6 +313,15 @@ def _place_top_labels(fig, ax, positions, texts, kinds):
     box = ax.get_window_extent(renderer)
     lo, hi, pad = box.x0 - 8.0, box.x1 + 8.0, 6.0
     rows = 1 if widths.sum() + pad * len(widths) <= hi - lo else 2
+    if rows == 2:
+        # Make room for the second row: lower the top of the axes (and of the colour bar
+        # beside it, which shares its height); x positions are unchanged.
+        shrink = 0.28 / fig.get_figheight()
+        top_edge = ax.get_position().y1
+        for other in fig.axes:
+            box = other.get_position()
+            if abs(box.y1 - top_edge) < 1e-6:
+                other.set_position([box.x0, box.y0, box.width, box.height - shrink])
     placed = np.empty_like(centres)
     for row in range(rows):
         members = np.arange(row, len(centres), rows)
@@ -275,14 +357,15 @@ def _place_side_labels(ax, points, texts, kinds):
 def _label_lines(fig, ax, curves, texts, kinds):
     """Label each curve (x, y arrays, y increasing) where it leaves the axes."""
     x0, x1 = sorted(ax.get_xlim())
-    y1 = ax.get_ylim()[1]
+    y0, y1 = ax.get_ylim()
+    near_top = y1 - 0.04 * (y1 - y0)     # a line leaving a side this high is labelled on top
     top, side = ([], [], []), ([], [], [])
     for (x, y), text, kind in zip(curves, texts, kinds):
         inside = (x >= x0) & (x <= x1) & (y <= y1)
         if not inside.any():
             continue
         last = np.flatnonzero(inside)[-1]
-        if last == len(x) - 1 or y[last] >= y1 - 1e-9 * abs(y1):
+        if last == len(x) - 1 or y[last] >= near_top:
             top[0].append(x[last])
             top[1].append(text)
             top[2].append(kind)
@@ -342,12 +425,9 @@ def plot_fan(fan_map, result, *, signal=None, scale="auto", show_ridges=False):
     gate, field = da[S.GATE].values, da[S.FIELD].values
     values, norm, used = colour_scale(da.values, scale)
     with rc_context(_style.rc_params()):
-        fig = _new_figure(7.0, 5.4)
-        ax = fig.add_subplot()
-        mesh = ax.pcolormesh(gate, field, values, norm=norm, cmap=_style.MAP_COLORMAP,
-                             shading="nearest", rasterized=True)
-        bar = fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.05)
-        bar.set_label(_colour_bar_label(da, used))
+        fig, ax, cax = _map_figure(7.0, 5.6)
+        mesh = _image(ax, gate, field, values, norm, _style.MAP_COLORMAP)
+        _colour_bar(fig, mesh, cax, _colour_bar_label(da, used))
         ax.set_xlabel(_axis_label(da[S.GATE], "gate voltage"))
         ax.set_ylabel(_axis_label(da[S.FIELD], "magnetic field"))
         gate_lo, gate_hi = float(gate.min()), float(gate.max())
@@ -370,7 +450,7 @@ def plot_fan(fan_map, result, *, signal=None, scale="auto", show_ridges=False):
             kinds.append(state.kind)
         _mark_zero_density(ax, result, gate_lo, gate_hi, field_lo)
         _label_lines(fig, ax, curves, texts, kinds)
-        zero = Line2D([], [], label=r"zero density $V_0$", **_style.ZERO_DENSITY_MARKER)
+        zero = Line2D([], [], label="zero density V₀", **_style.ZERO_DENSITY_MARKER)
         _kind_legend(ax, kinds, extra=[zero])
         fig.suptitle(_fan_title(fan_map, result), fontsize=_style.FONT_SIZE + 1)
     return fig
@@ -434,6 +514,24 @@ def _require_calibration(result, what):
                          "this result has none")
 
 
+def _resample_in_filling(gate, field, values, result, nu_lo, nu_hi):
+    """Each row interpolated (linearly in gate) onto one regular grid of filling factor.
+
+    The grid is fine enough that at the highest field one step in ν spans no more
+    than one gate step, so no minimum is skipped; outside the gate window it is NaN.
+    """
+    gate_step = float(np.median(np.diff(gate))) if gate.size > 1 else 1.0
+    volts_per_filling = np.abs(field).max() * FLUX_QUANTUM_SINGLE_ELECTRON / result.density_per_volt
+    count = int(np.clip((nu_hi - nu_lo) * volts_per_filling / gate_step, 200, 2500))
+    nu_grid = np.linspace(nu_lo, nu_hi, count)
+    out = np.full((field.size, count), np.nan)
+    for k, b in enumerate(field):
+        wanted = result.zero_density_voltage + nu_grid * abs(b) * (
+            FLUX_QUANTUM_SINGLE_ELECTRON / result.density_per_volt)
+        out[k] = np.interp(wanted, gate, values[k], left=np.nan, right=np.nan)
+    return nu_grid, out
+
+
 def plot_filling_map(fan_map, result, *, signal=None, scale="auto", max_filling=None):
     """The map redrawn against filling factor ν = n h/(e B) and field: fan lines become vertical.
 
@@ -448,6 +546,11 @@ def plot_filling_map(fan_map, result, *, signal=None, scale="auto", max_filling=
         raise InputError("the filling-factor map needs at least two rows at non-zero field")
     values, norm, used = colour_scale(da.values[keep], scale)
     field_kept = field[keep]
+    if np.any(field_kept > 0):
+        # One branch only: rows at +B and -B would fall on the same place in (nu, |B|).
+        values, field_kept = values[field_kept > 0], field_kept[field_kept > 0]
+    else:
+        field_kept = np.abs(field_kept)
     nu = filling_from_density(_density(gate, result)[None, :], field_kept[:, None])
     fillings = np.array([_state_nominal_filling(s) for s in result.states if s.kind != "satellite"])
     fillings = fillings[np.isfinite(fillings)]
@@ -457,22 +560,15 @@ def plot_filling_map(fan_map, result, *, signal=None, scale="auto", max_filling=
     nu_lo = max(-max_filling, float(np.nanmin(nu)))
     nu_hi = min(max_filling, float(np.nanmax(nu)))
     with rc_context(_style.rc_params()):
-        fig = _new_figure(7.0, 5.0)
-        ax = fig.add_subplot()
-        # Gouraud shading interpolates inside the sheared cells, which at low field are
-        # much wider than a pixel; flat cells would draw a saw-tooth pattern there.
-        finite = np.isfinite(values)
-        mesh = ax.pcolormesh(nu, np.broadcast_to(field_kept[:, None], nu.shape),
-                             np.ma.masked_invalid(np.where(finite, values, np.nan)),
-                             norm=norm, cmap=_style.TRANSFORMED_COLORMAP, shading="gouraud",
-                             rasterized=True)
-        bar = fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.05)
-        bar.set_label(_colour_bar_label(da, used))
+        fig, ax, cax = _map_figure(7.0, 5.2)
+        nu_grid, resampled = _resample_in_filling(gate, field_kept, values, result, nu_lo, nu_hi)
+        order = np.argsort(field_kept, kind="stable")
+        mesh = _image(ax, nu_grid, field_kept[order], resampled[order], norm,
+                      _style.TRANSFORMED_COLORMAP)
+        _colour_bar(fig, mesh, cax, _colour_bar_label(da, used))
         ax.set_xlim(nu_lo, nu_hi)
-        positive = field_kept[field_kept > 0]
-        ax.set_ylim(float(positive.min()) if positive.size else float(field_kept.min()),
-                    float(field_kept.max()))
-        ax.set_xlabel(r"filling factor $\nu = n h / (e B)$")
+        ax.set_ylim(float(field_kept.min()), float(field_kept.max()))
+        ax.set_xlabel("filling factor ν = nh/(eB)")
         ax.set_ylabel(_axis_label(da[S.FIELD], "magnetic field"))
         ax.set_facecolor("#e9e9e9")
         curves, texts, kinds = [], [], []
@@ -481,8 +577,7 @@ def plot_filling_map(fan_map, result, *, signal=None, scale="auto", max_filling=
         for state in result.states:
             style = _style.kind_style(state.kind)
             b_fit = _field_samples(max(state.field_min, 1e-3), state.field_max, 50)
-            b_ext = _field_samples(max(float(positive.min()) if positive.size else 1e-3, 1e-3),
-                                   b_top, 400)
+            b_ext = _field_samples(max(float(field_kept.min()), 1e-3), b_top, 400)
             # Extend a line only where the map has data (its gate value inside the window).
             v_ext = _state_gate(state, b_ext)
             b_ext = b_ext[(v_ext >= gate_lo) & (v_ext <= gate_hi)]
@@ -511,13 +606,9 @@ def plot_density_map(fan_map, result, *, signal=None, scale="auto"):
     values, norm, used = colour_scale(da.values, scale)
     density = _density(gate, result) / DENSITY_UNIT
     with rc_context(_style.rc_params()):
-        fig = _new_figure(7.0, 5.0)
-        ax = fig.add_subplot()
-        mesh = ax.pcolormesh(density, field, values, norm=norm,
-                             cmap=_style.TRANSFORMED_COLORMAP, shading="nearest",
-                             rasterized=True)
-        bar = fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.05)
-        bar.set_label(_colour_bar_label(da, used))
+        fig, ax, cax = _map_figure(7.0, 5.2)
+        mesh = _image(ax, density, field, values, norm, _style.TRANSFORMED_COLORMAP)
+        _colour_bar(fig, mesh, cax, _colour_bar_label(da, used))
         field_lo, field_hi = min(0.0, float(field.min())), float(field.max())
         ax.set_xlim(float(density.min()), float(density.max()))
         ax.set_ylim(field_lo, field_hi)
@@ -537,7 +628,7 @@ def plot_density_map(fan_map, result, *, signal=None, scale="auto"):
             kinds.append(state.kind)
         _label_lines(fig, ax, curves, texts, kinds)
         _kind_legend(ax, kinds)
-        fig.suptitle(r"map against density $n = \alpha\,(V_g - V_0)$",
+        fig.suptitle("map against density n = α (Vg − V₀)",
                      fontsize=_style.FONT_SIZE + 1)
     return fig
 
@@ -591,8 +682,11 @@ def plot_residuals(result, *, gate_step=None, max_columns=4):
     columns = min(max_columns, count)
     rows = math.ceil(count / columns)
     with rc_context(_style.rc_params()):
-        fig = _new_figure(2.0 * columns + 0.8, 1.55 * rows + 0.7)
+        width, height = 2.0 * columns + 0.8, 1.6 * rows + 0.9
+        fig = _new_figure(width, height, layout=None)
         axes = fig.subplots(rows, columns, sharex=True, sharey=True, squeeze=False)
+        fig.subplots_adjust(left=0.65 / width, right=1 - 0.15 / width, bottom=0.5 / height,
+                            top=1 - 0.75 / height, wspace=0.12, hspace=0.45)
         finite_fields = np.asarray(result.ridge_points["field"], dtype=float)
         b_max = float(np.nanmax(np.abs(finite_fields))) if finite_fields.size else 1.0
         spread = np.concatenate([np.abs(r[1]) for r in residuals] + [np.zeros(1)]) * 1e3
@@ -694,7 +788,7 @@ def plot_index_plot(result):
         ax.set_xlabel("1/B (1/T)")
         ax.set_ylabel("Landau index N")
         ax.legend(loc="upper left")
-        where = f" at $V_g$ = {data['gate']:.4g} V" if _is_number(data["gate"]) else ""
+        where = f" at gate voltage {data['gate']:.4g} V" if _is_number(data["gate"]) else ""
         fig.suptitle(_text_minus(f"Landau index plot{where}"), fontsize=_style.FONT_SIZE + 1)
     return fig
 
@@ -742,10 +836,8 @@ def plot_gate_maps(gate_maps, result, *, scale="auto"):
             da = _gate_signal(maps[k])
             top, bottom = da[S.TOP_GATE].values, da[S.BOTTOM_GATE].values
             values, norm, used = colour_scale(da.values, scale)
-            mesh = ax.pcolormesh(top, bottom, values, norm=norm, cmap=_style.GATE_COLORMAP,
-                                 shading="nearest", rasterized=True)
-            fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.06).set_label(
-                _colour_bar_label(da, used))
+            mesh = _image(ax, top, bottom, values, norm, _style.GATE_COLORMAP)
+            _colour_bar(fig, mesh, None, _colour_bar_label(da, used), ax=ax)
             if ridges is not None:
                 rt = np.asarray(ridges.get("top_gate", []), dtype=float)
                 rb = np.asarray(ridges.get("bottom_gate", []), dtype=float)
@@ -781,11 +873,11 @@ def _displacement_axis(coord):
     units = str(coord.attrs.get("units", "")).replace(" ", "").replace("^", "")
     values = np.asarray(coord.values, dtype=float)
     if units in ("Cm-2", "C/m2", "C/m**2", "Cm**-2"):
-        return values / VACUUM_PERMITTIVITY / 1e9, r"displacement $D/\varepsilon_0$ (V/nm)"
+        return values / VACUUM_PERMITTIVITY / 1e9, "displacement D/ε₀ (V/nm)"
     if units in ("V/m", "Vm-1"):
-        return values / 1e9, r"displacement $D/\varepsilon_0$ (V/nm)"
+        return values / 1e9, "displacement D/ε₀ (V/nm)"
     if units in ("V/nm", "Vnm-1"):
-        return values, r"displacement $D/\varepsilon_0$ (V/nm)"
+        return values, "displacement D/ε₀ (V/nm)"
     return values, _axis_label(coord, "displacement")
 
 
@@ -813,9 +905,8 @@ def plot_nd_map(nd_map, result=None, *, scale="auto"):
     with rc_context(_style.rc_params()):
         fig = _new_figure(6.2, 4.8)
         ax = fig.add_subplot()
-        mesh = ax.pcolormesh(density, displacement, values, norm=norm,
-                             cmap=_style.GATE_COLORMAP, shading="nearest", rasterized=True)
-        fig.colorbar(mesh, ax=ax, pad=0.01, fraction=0.05).set_label(_colour_bar_label(da, used))
+        mesh = _image(ax, density, displacement, values, norm, _style.GATE_COLORMAP)
+        _colour_bar(fig, mesh, None, _colour_bar_label(da, used), ax=ax)
         ax.axvline(0.0, color="#ffffff", linewidth=0.6, linestyle=":")
         ax.axhline(0.0, color="#ffffff", linewidth=0.6, linestyle=":")
         ax.set_xlabel(density_label)
@@ -884,8 +975,8 @@ def plot_batch_summary(rows):
         fig = _new_figure(7.4, 1.2 + 0.32 * len(rows))
         axes = fig.subplots(1, 2, sharey=True)
         for ax, values, errors, xlabel in (
-                (axes[0], alpha, alpha_err, r"lever arm $\alpha$ ($10^{10}$ cm$^{-2}$ V$^{-1}$)"),
-                (axes[1], v0, v0_err, r"zero-density voltage $V_0$ (V)")):
+                (axes[0], alpha, alpha_err, "lever arm α (10¹⁰ cm⁻² V⁻¹)"),
+                (axes[1], v0, v0_err, "zero-density voltage V₀ (V)")):
             for k in range(len(rows)):
                 style = _style.SERIES_STYLES[group_index[groups[k]] % len(_style.SERIES_STYLES)]
                 if np.isfinite(values[k]):
