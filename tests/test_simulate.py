@@ -15,13 +15,17 @@ from scipy import constants
 from scipy.optimize import minimize_scalar
 from scipy.signal import argrelmin
 
+from pathlib import Path
+
 from fanmap import physics as ph
+from fanmap._samples import REGENERATE, SAMPLES, make_sample
 from fanmap.cli import main
 from fanmap.errors import InputError
 from fanmap.simulate import (simulate_fan, simulate_gate_map, simulate_temperature_series,
                              write_map)
 
 CLEAN = dict(noise=0.0, noise_floor=0.0)
+SAMPLE_DIR = Path(__file__).resolve().parents[1] / "sample_maps"
 R_K = constants.h / constants.e**2  # CODATA 2018 (exact in the 2019 SI), via scipy.constants
 
 
@@ -370,3 +374,34 @@ def test_command_line_writes_a_map_and_rejects_bad_input(tmp_path, capsys):
     assert (tmp_path / "fan.png").stat().st_size > 1000
     assert main(["simulate", "--material", "2deg"]) == 2
     assert "--out" in capsys.readouterr().err
+
+
+# --- shipped samples -------------------------------------------------------------------------
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", sorted(SAMPLES))
+def test_shipped_sample_regenerates_to_the_same_arrays(name):
+    path = SAMPLE_DIR / name
+    assert path.stat().st_size < 2e6
+    shipped = xr.open_dataset(path)
+    fresh = make_sample(name)
+    for var in fresh.data_vars:
+        assert np.array_equal(shipped[var].values, fresh[var].values.astype(np.float32),
+                              equal_nan=True), var
+    for coord in fresh.coords:
+        assert np.array_equal(shipped[coord].values, fresh[coord].values), coord
+    for key, value in fresh.attrs.items():
+        if isinstance(value, str):
+            assert shipped.attrs[key] == value, key
+        else:
+            # netCDF gives one-element lists back as scalars
+            assert np.array_equal(np.atleast_1d(shipped.attrs[key]), np.atleast_1d(value),
+                                  equal_nan=True), key
+    assert shipped.attrs["map_kind"] in ("fan", "gates")
+
+
+def test_sample_readme_names_every_map_and_the_command():
+    readme = (SAMPLE_DIR / "README.md").read_text()
+    assert "synthetic" in readme and REGENERATE in readme
+    for name in SAMPLES:
+        assert name in readme

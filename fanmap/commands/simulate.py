@@ -86,8 +86,9 @@ def run(args):
         for path in write_samples(args.samples):
             print(f"wrote {path} ({path.stat().st_size / 1e6:.2f} MB)")
         return 0
-    if args.material is None or args.out is None:
-        raise InputError("give --material and --out (or --samples DIR); see fanmap simulate -h")
+    if args.material is None or (args.out is None and args.png is None):
+        raise InputError("give --material and --out FILE.nc and/or --png FILE.png "
+                         "(or --samples DIR); see fanmap simulate -h")
     common = dict(seed=args.seed, temperature=args.temperature, mobility=args.mobility,
                   broadening=None if args.broadening is None else args.broadening * MEV,
                   noise=args.noise, noise_floor=args.noise_floor,
@@ -109,9 +110,10 @@ def run(args):
                           zero_field_row=args.zero_field_row,
                           field_sign={"+": 1, "-": -1, "both": "both"}[args.field_sign],
                           **common)
-    write_map(ds, args.out)
-    print(f"wrote {args.out}: {ds.attrs['title']}, " + " x ".join(
-        f"{n} {d}" for d, n in ds.sizes.items()))
+    if args.out is not None:
+        write_map(ds, args.out)
+        print(f"wrote {args.out}: {ds.attrs['title']}, " + " x ".join(
+            f"{n} {d}" for d, n in ds.sizes.items()))
     if args.png is not None:
         render_png(ds, args.png)
         print(f"wrote {args.png}")
