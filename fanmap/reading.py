@@ -59,6 +59,8 @@ class _Context:
     recognised: list = _dc_field(default_factory=list)
     reasons: dict = _dc_field(default_factory=dict)
     units_read: dict = _dc_field(default_factory=dict)  # name in the map -> (units as read, origin)
+    fixed_field: str = None      # a constant field column (the field of a gate map)
+    fixed_gates: list = _dc_field(default_factory=list)  # gates held constant in a fan
 
     def note(self, text):
         self.recognised.append(text)
@@ -267,8 +269,33 @@ def _assign_axes(raw, info, candidates, ctx):
     return chosen, plain_gates
 
 
+def _varies(raw, name):
+    values = np.asarray(raw[name].values, dtype=float)
+    finite = values[np.isfinite(values)]
+    return finite.size > 1 and float(np.ptp(finite)) > 0
+
+
 def _decide_kind(chosen, plain_gates, candidates, raw, info, ctx):
     kind = ctx.options["kind"]
+    named = {ctx.options[o] for o, _ in _AXIS_OPTIONS if ctx.options[o]}
+    # a column that never changes (a gate held fixed, the field of a gate map) is not an axis,
+    # as long as enough other axes vary
+    gate_roles = [r for r in (R.GATE, R.TOP, R.BOTTOM) if r in chosen]
+    varying_gates = [chosen[r] for r in gate_roles if _varies(raw, chosen[r])] + \
+        [g for g in plain_gates if _varies(raw, g)]
+    field = chosen.get(R.FIELD)
+    if field is not None and field not in named and not _varies(raw, field) and len(varying_gates) >= 2:
+        del chosen[R.FIELD]
+        ctx.fixed_field = field
+        ctx.note(f"{field!r} is constant: the field of a gate map, not an axis")
+    if varying_gates:
+        for role in gate_roles:
+            name = chosen[role]
+            if name not in named and name not in varying_gates:
+                del chosen[role]
+                ctx.fixed_gates.append(name)
+                ctx.note(f"{name!r} is constant: not an axis")
+        plain_gates = [g for g in plain_gates if g in varying_gates or g in named]
     gates = [chosen[r] for r in (R.GATE, R.TOP, R.BOTTOM) if r in chosen] + plain_gates
     has_field = R.FIELD in chosen
     found = ", ".join(f"{n!r} ({info[n][0] or 'unrecognised'}: {info[n][1]})" for n in candidates) \
@@ -752,6 +779,12 @@ def _scalar_field(raw, scalars, info, ctx):
         value = parse_quantity(opt, "field", where="--field-value")
         ctx.note(f"field of the gate map: {value:.6g} T (option)")
         return value
+    if ctx.fixed_field is not None:
+        name = ctx.fixed_field
+        factor, _ = _axis_factor(raw, name, S.FIELD, ctx)
+        value = float(np.nanmedian(np.asarray(raw[name].values, dtype=float))) * factor
+        ctx.note(f"field of the gate map: {value:.6g} T from the constant column {name!r}")
+        return value
     for name, value in list(scalars.items()) + [(n, raw[n].values) for n in raw.variables
                                                   if raw[n].ndim == 0]:
         if info.get(name, (None,))[0] == R.FIELD:
@@ -799,6 +832,15 @@ def _finish(ds, raw, info, scalars, names, ctx):
         if var in ds.variables:
             ds[var].attrs["original_units"] = unit_text or "(none: SI assumed)"
             ds[var].attrs["units_from"] = origin or "assumed"
+    for name in ctx.fixed_gates:
+        unit_text, _ = _units_of(raw, name, ctx, ctx.options["gate_units"])
+        try:
+            factor = parse_unit(unit_text).factor if unit_text else 1.0
+        except InputError:
+            continue
+        value = float(np.nanmedian(np.asarray(raw[name].values, dtype=float))) * factor
+        ds.attrs[f"fixed_{name}"] = value
+        ctx.note(f"{name!r} held at {value:.6g} V (attribute 'fixed_{name}')")
     if kind == S.GATES:
         value = _scalar_field(raw, scalars, info, ctx)
         if value is not None:

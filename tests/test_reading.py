@@ -780,3 +780,29 @@ def test_mixed_units_across_files(tmp_path):
     np.testing.assert_allclose(both[0].gate.values, both[1].gate.values)
     volts = write_long(tmp_path / "c.csv", fan)
     assert len(open_maps([with_units, volts])) == 2  # explicit and different: converted, fine
+
+
+def test_constant_columns_are_not_axes(tmp_path):
+    # a fan with the top gate held fixed, and a gate map with a constant field column
+    fan = hand_fan(n_field=3, n_gate=9)
+    lines = ["B (T), Vtg (V), Vbg (V), Rxx (ohm)"]
+    for i, b in enumerate(fan.field.values):
+        for j, g in enumerate(fan.gate.values):
+            lines.append(f"{b}, 1.5, {g}, {fan.rxx.values[i, j]:.17g}")
+    path = tmp_path / "fixed_top.csv"
+    path.write_text("\n".join(lines))
+    read = open_map(path)
+    assert read.attrs["map_kind"] == "fan"
+    assert_same_map(read, fan[["rxx"]])
+    assert read.attrs["fixed_Vtg"] == pytest.approx(1.5)
+
+    lines = ["B (mT), Vtg (V), Vbg (V), Rxx (ohm)"]
+    for vb in (-1.0, 0.0, 1.0):
+        for vt in (-2.0, -1.0, 0.0, 1.0):
+            lines.append(f"500, {vt}, {vb}, {1 + vt * vt + vb}")
+    path = tmp_path / "gates_with_b.csv"
+    path.write_text("\n".join(lines))
+    read = open_map(path)
+    assert read.attrs["map_kind"] == "gates"
+    assert float(read.field) == pytest.approx(0.5)
+    np.testing.assert_allclose(read.rxx.values[0], [1 + vt * vt - 1.0 for vt in (-2.0, -1.0, 0.0, 1.0)])
