@@ -135,10 +135,15 @@ def rotated_grid(values, top, bottom, q, step=None):
 def _lorentz_batch(t, y, weights, x0, width, sign, iterations=30):
     """Fit y = b0 + b1 t + sign*A/(1 + ((t - x0)/w)^2) to every row of (t, y) at once.
 
-    Returns ``(x0, x0_stderr, amplitude, height, ok)``, height being the model
-    at x0 (background plus feature); rows are independent.
+    Returns ``(x0, x0_stderr, amplitude, height, area, ok)``, height being the
+    model at x0 (background plus feature), area the sum of the data above the
+    fitted background (per sample); rows are independent.
     """
     n = y.shape[0]
+    # Each row in units of its own largest value: resistances span decades.
+    scale = np.max(np.abs(np.where(weights > 0, y, 0.0)), axis=1, keepdims=True)
+    scale = np.where(scale > 0, scale, 1.0)
+    y = y / scale
     edge = np.where(weights > 0, y, np.nan)
     with np.errstate(all="ignore"), warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # windows with NaN ends
@@ -165,14 +170,15 @@ def _lorentz_batch(t, y, weights, x0, width, sign, iterations=30):
     for _ in range(iterations):
         jac = jacobian(params, s, lor) * np.sqrt(weights)[..., None]
         resid = (y - fit) * np.sqrt(weights)
-        jtj = np.einsum("nmi,nmj->nij", jac, jac)
-        grad = np.einsum("nmi,nm->ni", jac, resid)
-        diag = np.einsum("nii->ni", jtj)
+        jac_t = jac.transpose(0, 2, 1)
+        jtj = jac_t @ jac
+        grad = (jac_t @ resid[..., None])[..., 0]
+        diag = np.diagonal(jtj, axis1=1, axis2=2)
         system = jtj + damping[:, None, None] * (diag[:, :, None] * np.eye(5) + 1e-12 * np.eye(5))
         try:
             step = np.linalg.solve(system, grad[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            break
+        except np.linalg.LinAlgError:  # a degenerate row: fall back to pseudo-inverses
+            step = (np.linalg.pinv(system) @ grad[..., None])[..., 0]
         trial = params + step
         trial[:, 1] = np.clip(trial[:, 1], np.log(0.2), np.log(10.0 * t.shape[1]))
         trial_fit, trial_s, trial_lor = model(trial)
@@ -183,7 +189,7 @@ def _lorentz_batch(t, y, weights, x0, width, sign, iterations=30):
         cost[better] = trial_cost[better]
         damping = np.where(better, damping / 3.0, damping * 4.0)
     jac = jacobian(params, s, lor) * np.sqrt(weights)[..., None]
-    jtj = np.einsum("nmi,nmj->nij", jac, jac)
+    jtj = jac.transpose(0, 2, 1) @ jac
     dof = np.maximum(weights.sum(axis=1) - 5, 1)
     with np.errstate(invalid="ignore", divide="ignore"):
         try:
@@ -194,8 +200,11 @@ def _lorentz_batch(t, y, weights, x0, width, sign, iterations=30):
     stderr = np.sqrt(np.abs(var))
     ok = (np.isfinite(params).all(axis=1) & np.isfinite(stderr) & (params[:, 2] > 0)
           & (params[:, 0] > t[:, 0]) & (params[:, 0] < t[:, -1]))
-    height = params[:, 3] + params[:, 4] * params[:, 0] + sign * params[:, 2]
-    return params[:, 0], stderr, params[:, 2], height, ok
+    height = (params[:, 3] + params[:, 4] * params[:, 0] + sign * params[:, 2]) * scale[:, 0]
+    # Area of the feature above the fitted background: unlike the amplitude it does not
+    # depend on where a feature narrower than the sampling falls between samples.
+    area = np.sum(weights * sign * (y - params[:, 3:4] - params[:, 4:5] * t), axis=1) * scale[:, 0]
+    return params[:, 0], stderr, params[:, 2] * scale[:, 0], height, area, ok
 
 
 def trace_extrema(values, scan, other, q_scan, centres, half_window, sign, width,
@@ -225,12 +234,14 @@ def trace_extrema(values, scan, other, q_scan, centres, half_window, sign, width
     -------
     dict of arrays: ``line`` (index into centres), ``scan``, ``other``,
     ``scan_stderr`` (V), ``amplitude`` (feature above its background) and
-    ``peak`` (fitted value at the extremum), in the units of ``values``.
+    ``peak`` (fitted value at the extremum), in the units of ``values``, and
+    ``area`` (feature above its background integrated along the trace, units x V).
     """
     step = scan[1] - scan[0]
     n_other, n_scan = values.shape
     m = 2 * half_window + 1
-    out = {key: [] for key in ("line", "scan", "other", "scan_stderr", "amplitude", "peak")}
+    out = {key: [] for key in ("line", "scan", "other", "scan_stderr", "amplitude", "peak",
+                               "area")}
     offsets = np.arange(-half_window, half_window + 1)
     for line, centre in enumerate(centres):
         expected = (centre - q_scan * other - scan[0]) / step
@@ -256,7 +267,7 @@ def trace_extrema(values, scan, other, q_scan, centres, half_window, sign, width
         rows, index, window, weights = rows[good_rows], index[good_rows], window[good_rows], weights[good_rows]
         y = np.where(weights > 0, window, 0.0)
         t = np.broadcast_to(offsets.astype(float), y.shape).copy()
-        x0, x0_err, amp, height, ok = _lorentz_batch(t, y, weights, np.zeros(len(rows)),
+        x0, x0_err, amp, height, area, ok = _lorentz_batch(t, y, weights, np.zeros(len(rows)),
                                                 np.full(len(rows), max(width, 0.7)), sign)
         base = np.nanmedian(np.abs(window), axis=1)
         ok &= amp > min_contrast * np.maximum(base, 1e-300)
@@ -268,6 +279,7 @@ def trace_extrema(values, scan, other, q_scan, centres, half_window, sign, width
         out["scan_stderr"].append(np.abs(x0_err[ok] * step))
         out["amplitude"].append(amp[ok])
         out["peak"].append(height[ok])
+        out["area"].append(area[ok] * step)
     return {key: (np.concatenate(v) if v else np.empty(0)) for key, v in out.items()}
 
 
@@ -311,6 +323,16 @@ def symmetry_centre(x, y, min_overlap=0.3):
     x, y = x[order], y[order]
     if x.size < 9:
         return np.nan, np.nan, 0.0, True
+    # Drop isolated outliers (a crossing feature, a failed fit) against a running median.
+    from scipy.ndimage import median_filter
+    trend = median_filter(y, size=9, mode="nearest")
+    deviation = np.abs(y - trend)
+    keep = deviation <= 4 * 1.4826 * np.median(deviation) + 1e-300
+    x, y = x[keep], y[keep]
+    # Local scatter: pairs from noisy stretches (a narrow ridge at large |D|) count less.
+    local = 1.4826 * median_filter(np.abs(y - trend[keep]), size=15, mode="nearest")
+    local = np.maximum(local, 0.1 * np.median(local) + 1e-12)
+    noise_at = interpolate.interp1d(x, local, bounds_error=False, fill_value=np.nan)
     span = x[-1] - x[0]
     spacing = span / (x.size - 1)
     noise = np.median(np.abs(np.diff(y, 2))) / 0.6745 / np.sqrt(6) + 1e-300
@@ -318,7 +340,9 @@ def symmetry_centre(x, y, min_overlap=0.3):
     half_min = 0.5 * min_overlap * span
 
     def mismatch(c):
-        reach = min(c - x[0], x[-1] - c)
+        # Mirror no further than a fifth of the range: far from the centre a curve
+        # is least symmetric (sampling, a gap that saturates) and least informative.
+        reach = min(c - x[0], x[-1] - c, max(0.2 * span, half_min))
         if reach < half_min:
             return np.inf, 0
         d = np.arange(spacing, reach, spacing)
@@ -327,10 +351,11 @@ def symmetry_centre(x, y, min_overlap=0.3):
         if ok.sum() < 4:
             return np.inf, 0
         right, left = right[ok], left[ok]
+        weight = 1.0 / (noise_at(c + d[ok]) ** 2 + noise_at(c - d[ok]) ** 2)
         centre_value = 0.5 * (right.mean() + left.mean())
         # Normalised: 0 for a mirror image, about 1 for two unrelated (or flat, noisy) sides.
-        spread = np.sum((right - centre_value) ** 2 + (left - centre_value) ** 2)
-        return np.sum((right - left) ** 2) / max(spread, 1e-300), ok.sum()
+        spread = np.sum(weight * ((right - centre_value) ** 2 + (left - centre_value) ** 2))
+        return np.sum(weight * (right - left) ** 2) / max(spread, 1e-300), ok.sum()
 
     candidates = np.linspace(x[0] + half_min, x[-1] - half_min, 4 * x.size)
     costs = np.array([mismatch(c)[0] for c in candidates])
@@ -343,7 +368,7 @@ def symmetry_centre(x, y, min_overlap=0.3):
     at_edge = best in (0, candidates.size - 1)
     cost, count = mismatch(centre)
     # Gauss-Newton standard error of c: residuals r(d) = y(c+d) - y(c-d).
-    reach = min(centre - x[0], x[-1] - centre)
+    reach = min(centre - x[0], x[-1] - centre, max(0.2 * span, half_min))
     d = np.arange(spacing, reach, spacing)
     slope = np.gradient(signal.savgol_filter(y, min(11, x.size - (1 - x.size % 2)), 2), x)
     fs = interpolate.interp1d(x, slope, bounds_error=False, fill_value=np.nan)

@@ -110,7 +110,7 @@ def _neutrality_ridge(arrays, q, name):
             "spacing": np.nan, "profile_step": du,
             "points": {"top": top, "bottom": bottom, "stderr": err,
                        "line": found["line"].astype(int), "trace": found["other"],
-                       "amplitude": found["amplitude"]},
+                       "strength": found["area"]},
             "line_index": np.array([0]), "neutral_u": u[peak]}
 
 
@@ -206,7 +206,7 @@ def _quantum_hall_lines(arrays, q, name):
             t0, b0, e0 = _points(found0, q)
             # At fixed field the nu = 0 peak is wide against the window: its fitted height
             # is steadier than its amplitude above a background.
-            neutral = {"top": t0, "bottom": b0, "stderr": e0, "amplitude": found0["peak"]}
+            neutral = {"top": t0, "bottom": b0, "stderr": e0, "strength": found0["peak"]}
     return {"mode": "quantum-hall", "u_lines": positions,
             "spacing": spacing, "profile_step": u[1] - u[0],
             "points": {"top": top, "bottom": bottom, "stderr": err,
@@ -481,7 +481,8 @@ def _neutral_point(maps, q, k):
     preferred = [m for m in maps if m["mode"] == "neutrality"] or maps
     for m in preferred:
         if m["mode"] == "neutrality":
-            # The ridge's height above its own background: free of the contact resistance.
+            # The ridge's area above its own background: free of the contact resistance and
+            # of where a narrow ridge falls between pixels.
             pts = m["points"]
         else:
             pts = m.get("neutral_points")
@@ -490,7 +491,7 @@ def _neutral_point(maps, q, k):
             u = pts["top"] + q * pts["bottom"]
             spread = 1.4826 * np.median(np.abs(u - np.median(u))) + 1e-12
             on_line = np.abs(u - np.median(u)) < 4 * spread
-            vb, values = pts["bottom"][on_line], np.log(pts["amplitude"][on_line])
+            vb, values = pts["bottom"][on_line], np.log(np.abs(pts["strength"][on_line]) + 1e-300)
         else:
             vb = _neutral_segment(m["arrays"], q, k)
             z = ridges.log_signal(m["arrays"]["rxx"])
