@@ -135,3 +135,29 @@ def test_random_npz(shape_b, shape_v, names, units, seed):
 def test_valid_netcdf_still_reads(engine):
     # guard for the fuzzers above: an undamaged file must give a map, not an error
     assert read_or_refuse(_fan_bytes(engine), ".nc") is not None
+
+
+_NAMES = ["B", "field", "Vg", "gate", "Vtg", "Vbg", "rxx", "R_xy", "Vxx", "sigma_xx", "x", "I", "sweep"]
+_UNITS = ["T", "mT", "G", "V", "mV", "ohm", "kOhm", "S", "e^2/h", "uV", "nA", "K", "", "bogus"]
+
+
+@FUZZ
+@given(sizes=st.lists(st.integers(1, 6), min_size=1, max_size=3),
+       variables=st.lists(st.tuples(st.sampled_from(_NAMES), st.sampled_from(_UNITS),
+                                    st.lists(st.integers(0, 2), max_size=3, unique=True)),
+                          min_size=1, max_size=6, unique_by=lambda v: v[0]),
+       fill=st.sampled_from(["random", "nan", "constant", "huge"]), seed=st.integers(0, 1000))
+def test_random_netcdf_layouts(sizes, variables, fill, seed):
+    rng = np.random.default_rng(seed)
+    dims = [f"d{i}" for i in range(len(sizes))]
+    ds = xr.Dataset()
+    for name, unit, axes in variables:
+        axes = [a for a in axes if a < len(dims)]
+        shape = tuple(sizes[a] for a in axes)
+        values = {"random": rng.normal(size=shape), "nan": np.full(shape, np.nan),
+                  "constant": np.ones(shape), "huge": rng.normal(size=shape) * 1e7}[fill]
+        ds[name] = (tuple(dims[a] for a in axes), values, {"units": unit} if unit else {})
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "layout.nc"
+        ds.to_netcdf(path)
+        read_or_refuse(path.read_bytes(), ".nc", excitation_current="1 nA")
