@@ -157,7 +157,7 @@ def colour_scale(values, scale="auto"):
     if finite.size == 0:
         raise InputError("the map has no finite values to draw; check the signal and its NaNs")
     positive = finite[finite > 0]
-    mostly_positive = positive.size >= 0.98 * finite.size
+    mostly_positive = positive.size >= 0.9 * finite.size
     if scale == "auto":
         scale = "linear"
         if mostly_positive and positive.size:
@@ -185,7 +185,9 @@ def colour_scale(values, scale="auto"):
             raise InputError("a logarithmic colour scale needs positive values; use scale='linear'")
         lo, hi = np.percentile(positive, [0.5, 99.5])
         lo = max(lo, hi * 1e-6)
-        values = np.where(values > 0, values, np.nan)
+        # Values at or below zero (noise, or R_xy mixed into R_xx in a minimum) are the
+        # deepest minima: draw them at the bottom of the scale rather than as holes.
+        values = np.where(np.isfinite(values), np.maximum(values, lo), np.nan)
         return values, LogNorm(vmin=lo, vmax=max(hi, lo * 1.01)), scale_used
     lo, hi = np.percentile(finite, [0.5, 99.5])
     return values, Normalize(vmin=lo, vmax=hi if hi > lo else lo + 1), "linear"
@@ -425,7 +427,7 @@ def plot_fan(fan_map, result, *, signal=None, scale="auto", show_ridges=False):
     gate, field = da[S.GATE].values, da[S.FIELD].values
     values, norm, used = colour_scale(da.values, scale)
     with rc_context(_style.rc_params()):
-        fig, ax, cax = _map_figure(7.0, 5.6)
+        fig, ax, cax = _map_figure(7.0, 5.8, top=0.8)
         mesh = _image(ax, gate, field, values, norm, _style.MAP_COLORMAP)
         _colour_bar(fig, mesh, cax, _colour_bar_label(da, used))
         ax.set_xlabel(_axis_label(da[S.GATE], "gate voltage"))
@@ -445,6 +447,10 @@ def plot_fan(fan_map, result, *, signal=None, scale="auto", show_ridges=False):
             b_fit = _field_samples(state.field_min, state.field_max, 50)
             _draw_state_line(ax, _state_gate(state, b_fit), b_fit, _state_gate(state, b_ext),
                              b_ext, style)
+            if field_lo < 0:
+                # The same line at negative field: minima of R_xx depend on |B| only.
+                _draw_state_line(ax, _state_gate(state, b_fit), -b_fit,
+                                 _state_gate(state, b_ext), -b_ext, style)
             curves.append((_state_gate(state, b_ext), b_ext))
             texts.append(state_label(state))
             kinds.append(state.kind)
@@ -468,6 +474,8 @@ def _fan_title(fan_map, result):
     v0 = result.zero_density_voltage
     if math.isfinite(v0):
         parts.append(f"V₀ = ({value_with_error(v0, result.zero_density_voltage_stderr)}) V")
+    if len(parts) == 3 and len(parts[0]) > 24:
+        return parts[0] + "\n" + "   ".join(parts[1:])
     return "   ".join(parts)
 
 
