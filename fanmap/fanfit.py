@@ -168,6 +168,22 @@ def _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance
         & (observed >= expected + 4 * np.sqrt(expected))
 
 
+def _link_by_direction(minima, direction, tolerance):
+    """Ridge traces, linked separately within each sweep direction (hysteresis shifts them)."""
+    if direction is None:
+        link_traces(minima, tolerance=tolerance)
+        return
+    trace = np.full(len(minima), -1)
+    offset = 0
+    for sign in (1, -1):
+        mask = direction[minima.row] == sign
+        part = minima.take(mask)
+        n = link_traces(part, tolerance=tolerance)
+        trace[mask] = np.where(part.trace >= 0, part.trace + offset, -1)
+        offset += n
+    minima.trace = trace
+
+
 def _best_origin(gate_pts, field_pts, votes, gate, bin_width):
     """Zero-density voltage that makes the minima vote most sharply (coarse then fine scan).
 
@@ -273,7 +289,7 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         raise NoFanError(f"only {len(minima)} R_xx minima found in the whole map; no fan to fit. "
                          "Check that the map shows quantum Hall minima (field high enough, "
                          "the right --signal), or lower the detection threshold")
-    link_traces(minima, tolerance=2.5 * step)
+    _link_by_direction(minima, direction, tolerance=2.5 * step)
 
     # Global vote for the origin and the slopes.
     votes = np.minimum(minima.prominence, 20.0) * (0.5 + 0.5 * minima.valley) * minima.field
@@ -364,11 +380,14 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     if dielectric is not None:
         thickness, permittivity = dielectric
         prior = float(lever_arm_from_dielectric(thickness, permittivity))
-    # The main sequence is the one that survives to the lowest fields: a line much weaker
-    # than a neighbour where the two first appear together is a split-off (broken-symmetry,
-    # fractional) state, not part of it.
-    main_weight = ((~_subordinate_lines(minima, line, slopes, onsets, origin_rows, gate))
-                   & (onsets <= 3 * onsets.min())).astype(float)
+    # The main sequence is the one that survives to the lowest fields: a line that starts
+    # late, or much weaker than a neighbour where the two first appear together, is a
+    # split-off (broken-symmetry, fractional) state, not part of it.
+    # Lines seen in the lowest-field rows, where the third line of the fan appears (25 %
+    # margin), and not outdone by a neighbour there.
+    early = onsets <= 1.25 * np.sort(onsets)[min(2, n_lines - 1)]
+    main_weight = early & ~_subordinate_lines(minima, line, slopes, onsets, origin_rows, gate)
+    main_weight = (main_weight if main_weight.sum() >= 2 else early).astype(float)
     naming = name_lines(slopes, free["slopes_stderr"], onsets, weights=main_weight,
                         hall_fillings=hall, material=material, lever_arm_prior=prior)
     warnings += naming.warnings

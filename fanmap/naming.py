@@ -120,7 +120,10 @@ def main_sequence_unit(slopes, slope_stderr, onsets, weights=None):
             if abs(phase) > 0.25:
                 continue
             ok = _on_grid(delta, phase, tol) & (np.abs(sm / u - phase) > 0.25)
-            if wm[ok].sum() >= 0.8 * wm.sum() and ok.sum() >= min(2, sm.size):
+            # Two lines cannot be the same Landau level: grid positions must differ.
+            position = np.round(delta - phase)[ok] * 2 + np.sign(sm[ok])
+            distinct = np.unique(position).size == ok.sum()
+            if distinct and wm[ok].sum() >= 0.8 * wm.sum() and ok.sum() >= min(2, sm.size):
                 if best is None or abs(phase) < abs(best[1]):
                     best = (gamma, phase)
         if best is not None:
