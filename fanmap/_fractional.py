@@ -28,7 +28,7 @@ from . import physics as ph
 
 __all__ = ["composite_fermion_energy", "composite_fermion_transport", "fraction_sequence"]
 
-_HARMONICS = 40
+_HARMONICS = 60
 
 
 def composite_fermion_energy(field, partial_filling, mass_coefficient):
@@ -71,16 +71,20 @@ def composite_fermion_transport(filling, field, temperature, *, mass_coefficient
     with np.errstate(divide="ignore", invalid="ignore"):
         p = np.where(below_half, x / (1 - 2 * x), x / (2 * x - 1))
     energy = composite_fermion_energy(field, x, mass_coefficient)
-    s = np.arange(1, _HARMONICS + 1)[:, None]
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         ratio = broadening / energy
+        # harmonics beyond s r = 2.5 / pi are damped below 1e-5
+        finite = ratio[np.isfinite(ratio) & (ratio > 0)]
+        count = int(np.clip(np.ceil(2.5 / (np.pi * finite.min())), 4, _HARMONICS)) \
+            if finite.size else 4
+        s = np.arange(1, count + 1)[:, None]
         dingle = np.exp(-2 * np.pi**2 * s**2 * ratio**2)
         xt = 2 * np.pi**2 * s * ph.BOLTZMANN * temperature / energy
         thermal = np.where(xt > 0, xt / np.sinh(xt), 1.0)
     amplitude = np.nan_to_num((-1.0) ** s * dingle * thermal)
-    phase = 2 * np.pi * s * np.nan_to_num(p)
-    dos = 1 + 2 * np.sum(amplitude * np.cos(phase), axis=0)
-    staircase = np.nan_to_num(p) + np.sum(amplitude * np.sin(phase) / (np.pi * s), axis=0)
+    wave = np.exp(2j * np.pi * s * np.nan_to_num(p))
+    dos = 1 + 2 * np.sum(amplitude * wave.real, axis=0)
+    staircase = np.nan_to_num(p) + np.sum(amplitude * wave.imag / (np.pi * s), axis=0)
     factor[inside] = np.clip(dos, 1e-6, None)
     with np.errstate(divide="ignore", invalid="ignore"):
         hall_x = np.where(below_half, staircase / (2 * staircase + 1),

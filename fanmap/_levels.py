@@ -195,17 +195,6 @@ class SpectrumModel:
             energies, weights, nu_lo = self._plain_levels(field, reach)
         return self._split(energies, weights, nu_lo, field)
 
-    def gap_at(self, filling, field):
-        """Gap (J) of the spectrum at ``filling`` and ``field`` after all splittings (0 if none)."""
-        flux = ph.flux_density_per_flavour(field)
-        reach = (abs(float(filling)) + 8) * flux
-        energies, weights, floor = self.levels(field, (-reach, reach))
-        edges = floor + np.cumsum(weights)
-        k = np.flatnonzero(np.isclose(edges, float(filling), rtol=0, atol=1e-6))
-        if k.size == 0 or k[0] + 1 >= energies.size:
-            return 0.0
-        return float(energies[k[0] + 1] - energies[k[0]])
-
     def _plain_levels(self, field, reach):
         if self.kind == "2deg":
             # spin-resolved pairs split by Zeeman plus the exchange gap of the odd filling

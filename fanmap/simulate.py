@@ -456,13 +456,27 @@ def _visible_states(model, mat, field, density, temperature, composite_fermions)
     out = {}
     sample = field[:: max(1, field.size // 60)]
     dens = density[:: max(1, field.size // 60)]
+    span = (density.min(), density.max())
+    spectra = {}
+
+    def gap(nu, b):
+        """Gap (J) of the full spectrum at filling ``nu`` and field ``b`` (0 if none)."""
+        if b not in spectra:
+            energies, weights, floor = model.levels(b, span)
+            spectra[b] = (floor + np.cumsum(weights), np.diff(energies, append=np.nan))
+        edges, steps = spectra[b]
+        k = np.searchsorted(edges, nu - 1e-6)
+        if k < edges.size and abs(edges[k] - nu) < 1e-6 and np.isfinite(steps[k]):
+            return steps[k]
+        return 0.0
+
     main, onsets = [], []
     for nu in main_sequence(mat, 60):
         if model.kind == "moire" and abs(nu) * 1.0 > 12:
             continue
         b_on = _resolved_from(model, sample, dens, temperature,
                               lambda b, nu=nu: nu * ph.flux_density_per_flavour(b),
-                              lambda b, nu=nu: model.gap_at(nu, b))
+                              lambda b, nu=nu: gap(nu, b))
         if np.isfinite(b_on):
             main.append(int(nu)), onsets.append(b_on)
     out["main_fillings"] = main
@@ -471,7 +485,7 @@ def _visible_states(model, mat, field, density, temperature, composite_fermions)
     for nu in sorted(model.broken_symmetry, key=lambda nu: (abs(nu), nu)):
         b_on = _resolved_from(model, sample, dens, temperature,
                               lambda b, nu=nu: nu * ph.flux_density_per_flavour(b),
-                              lambda b, nu=nu: model.gap_at(nu, b))
+                              lambda b, nu=nu: gap(nu, b))
         if np.isfinite(b_on):
             names.append(int(nu)), fields.append(b_on)
     out["broken_symmetry_fillings"], out["broken_symmetry_onset_fields"] = names, fields
