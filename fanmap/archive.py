@@ -658,6 +658,42 @@ def run_batch(jobs, out_dir, *, workers=None, scheduler=None, resume=False, retr
     """
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
+    with _exclusive(out_dir):
+        _remove_unfinished_writes(out_dir)
+        return _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_flight,
+                          summary, title, stream)
+
+
+@contextlib.contextmanager
+def _exclusive(out_dir):
+    """Hold a lock on ``out_dir`` for the run; the system drops it when the process dies."""
+    import fcntl
+
+    with open(out_dir / ".lock", "a+") as handle:
+        try:
+            fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            raise InputError(f"another fanmap batch is writing to {out_dir}; wait for it to finish "
+                             f"or choose another --out") from None
+        try:
+            yield
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
+
+
+def _remove_unfinished_writes(out_dir):
+    """Delete the temporary files of writes a killed run left behind (never complete outputs)."""
+    patterns = ["records/.*", "maps/*/.*"] + [f".{name}.*" for name in (
+        "results.csv", "results.nc", "summary.png", "summary.pdf", "index.html",
+        "batch_summary.png", "batch_summary.pdf")]
+    for pattern in patterns:
+        for path in out_dir.glob(pattern):
+            if path.is_file():
+                path.unlink(missing_ok=True)
+
+
+def _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_flight, summary, title,
+               stream):
     started = time.perf_counter()
     progress = _Progress(len(jobs), stream)
     keys = {}            # job index -> record key, for assembling the table

@@ -433,7 +433,7 @@ def parse_workflow(text, path):
     defaults = _settings(defaults_table, ("defaults",), problems, empty)
 
     devices_list = data.get("devices")
-    devices, seen_names, seen_maps = [], {}, {}
+    devices, seen_maps = [], {}
     if not isinstance(devices_list, list) or not devices_list:
         problems.add(("devices",), "the workflow needs at least one [[devices]] table with "
                                    "'name' and 'maps'")
@@ -445,16 +445,14 @@ def parse_workflow(text, path):
             continue
         _check_keys(entry, _DEVICE_KEYS, key_path, problems)
         name = entry.get("name")
-        if name is None:
-            problems.add(key_path, f"[[devices]] #{index + 1} needs a 'name'")
-        elif _expect(name, "text", key_path + ("name",), problems):
-            if name in seen_names:
-                problems.add(key_path + ("name",), f"device name {name!r} is used twice "
-                                                   f"(also on line {seen_names[name]})")
-            seen_names.setdefault(name, problems.line_of(key_path + ("name",)))
         for key in ("cooldown", "notes"):
             if key in entry:
                 _expect(entry[key], "text", key_path + (key,), problems)
+        if name is None:
+            problems.add(key_path, f"[[devices]] #{index + 1} needs a 'name'")
+        else:
+            # A device may have several entries: one per cooldown, or per file format.
+            _expect(name, "text", key_path + ("name",), problems)
         settings = _settings(entry, key_path, problems, defaults)
         if "maps" not in entry:
             problems.add(key_path, f"[[devices]] #{index + 1} needs 'maps' (paths or globs)")

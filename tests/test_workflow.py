@@ -112,7 +112,7 @@ def test_bad_values_name_their_line(archive):
     maps = ["KR-12/**/*.nc"]
 
     [[devices]]
-    name = "KR-12"
+    name = 12
     maps = ["nowhere/*.nc"]
     excitation_current = -1e-9
     """
@@ -120,7 +120,7 @@ def test_bad_values_name_their_line(archive):
     assert "line 2: unknown material 'graphene-monolayr'; did you mean 'graphene-monolayer'?" in message
     assert "line 3: 'gate_range' must be [low, high] in V with low < high" in message
     assert "line 4: units.gate = 'T' is a magnetic field, not a voltage" in message
-    assert "line 11: device name 'KR-12' is used twice (also on line 7)" in message
+    assert "line 11: 'name' must be text, not 12" in message
     assert "line 12: maps entry 'nowhere/*.nc' matches no readable map file" in message
     assert "line 13: 'excitation_current' must be a positive number in A" in message
 

@@ -7,11 +7,12 @@ from .._cautions import CAUTIONS
 from ..archive import find_maps, jobs_for_paths, map_settings, run_batch
 from ..errors import InputError
 from ..materials import MATERIAL_NAMES
+from ._options import add_reading_options, reading_kwargs
 
 HELP = "analyse every map of an archive folder, glob or workflow file into one results table"
 
 #: Options that set analysis settings; with a workflow file they belong in the file.
-_SETTING_OPTIONS = ("material", "dielectric_thickness_nm", "permittivity", "gate_range",
+_SETTING_OPTIONS = ("material", "dielectric_thickness", "permittivity", "gate_range",
                     "field_range", "gate_limits", "no_figures", "no_summary", "analyses")
 
 
@@ -41,7 +42,7 @@ def register(subparsers):
                         help="maps sent to workers at once (default: twice the worker threads)")
     settings = parser.add_argument_group("analysis settings (folder or glob sources only)")
     settings.add_argument("--material", choices=MATERIAL_NAMES, help="material preset (default: auto)")
-    settings.add_argument("--dielectric-thickness-nm", type=float, metavar="NM",
+    settings.add_argument("--dielectric-thickness", type=float, metavar="NM",
                           help="gate dielectric thickness prior, in nm (with --permittivity)")
     settings.add_argument("--permittivity", type=float, metavar="EPS_R",
                           help="relative permittivity of the gate dielectric")
@@ -57,18 +58,19 @@ def register(subparsers):
     settings.add_argument("--no-figures", action="store_true",
                           help="write per-map result JSON only (no figures or report pages)")
     settings.add_argument("--no-summary", action="store_true", help="do not draw the summary figure")
+    add_reading_options(parser)
     parser.set_defaults(run=run)
     return parser
 
 
 def _settings_from_args(args):
     dielectric = None
-    if (args.dielectric_thickness_nm is None) != (args.permittivity is None):
-        raise InputError("give --dielectric-thickness-nm and --permittivity together")
-    if args.dielectric_thickness_nm is not None:
-        if args.dielectric_thickness_nm <= 0 or args.permittivity <= 0:
-            raise InputError("--dielectric-thickness-nm and --permittivity must be positive")
-        dielectric = {"thickness": args.dielectric_thickness_nm * 1e-9, "permittivity": args.permittivity}
+    if (args.dielectric_thickness is None) != (args.permittivity is None):
+        raise InputError("give --dielectric-thickness and --permittivity together")
+    if args.dielectric_thickness is not None:
+        if args.dielectric_thickness <= 0 or args.permittivity <= 0:
+            raise InputError("--dielectric-thickness (nm) and --permittivity must be positive")
+        dielectric = {"thickness": args.dielectric_thickness * 1e-9, "permittivity": args.permittivity}
     for name in ("gate_range", "field_range", "gate_limits"):
         limits = getattr(args, name)
         if limits is not None and not limits[0] < limits[1]:
@@ -80,15 +82,21 @@ def _settings_from_args(args):
         if unknown or not chosen:
             raise InputError(f"--analyses takes fan, gates, crosschecks; got {args.analyses!r}")
         analyses = {name: name in chosen for name in ("fan", "gates", "crosschecks")}
-    return map_settings(material=args.material or "auto", dielectric=dielectric,
+    return map_settings(material=args.material or "auto", dielectric=dielectric, reading=_reading(args),
                         gate_range=args.gate_range, field_range=args.field_range,
                         gate_limits=args.gate_limits, analyses=analyses, figures=not args.no_figures)
+
+
+def _reading(args):
+    """The reading options given on the command line (unset ones left out, so they hash alike)."""
+    return {key: value for key, value in reading_kwargs(args).items() if value not in (None, {}, [])}
 
 
 def _workflow_jobs(args):
     from ..workflow import load_workflow
 
     given = [name for name in _SETTING_OPTIONS if getattr(args, name) not in (None, False)]
+    given += [f"{name} (reading option)" for name in _reading(args)]
     if given:
         raise InputError(f"{', '.join('--' + g.replace('_', '-') for g in given)}: with a workflow file, "
                          f"put analysis settings in the file ([defaults] or [[devices]])")
