@@ -425,8 +425,8 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
         line = _grow_line(b, v, row, points["weight"], claimed, t, u0, k, tol)
         if line is None or line["points"] < min_points:
             continue
-        if np.ptp(b[line["members"]]) < min_span:
-            continue
+        if np.ptp(b[line["members"]]) < max(min_span, 0.3 * line["field_max"]):
+            continue   # too short, or seen only far from B = 0: its intercept is a long guess
         # a real line is resolved on most rows it crosses; crossings of other lines that
         # happen to align are sparse
         rows_spanned = np.sum((row_fields >= line["field_min"]) & (row_fields <= line["field_max"]))
@@ -449,31 +449,49 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
 
 
 def _grow_line(b, v, row, weight, claimed, t, u0, k, tol):
-    """Collect the points of one line (one per field row) and fit it freely."""
-    slope, intercept = t * k, u0
-    members = None
-    window = tol
-    for _ in range(4):
+    """Collect the points of one line (one per field row) and fit it freely.
+
+    The vote fixes the slope t; the intercept is first refined with that slope
+    held, so that a neighbouring line merging with this one at low field cannot
+    drag the start of the fit away.  Then slope and intercept are fitted with
+    outliers clipped, and the window shrinks to the line's own scatter.
+    """
+
+    def members_near(intercept, slope, window):
         resid = v - (intercept + slope * b)
         near = np.flatnonzero(~claimed & (np.abs(resid) < window))
-        if near.size < 3:
-            return None
-        # one point per field row: the closest one
-        order = np.lexsort((np.abs(resid[near]), row[near]))
+        order = np.lexsort((np.abs(resid[near]), row[near]))   # closest point of each row
         near = near[order]
         keep = np.ones(near.size, bool)
         keep[1:] = row[near][1:] != row[near][:-1]
-        members = near[keep]
-        if np.unique(b[members]).size < 3:
+        return near[keep], resid
+
+    slope, intercept = t * k, u0
+    members, resid = members_near(intercept, slope, tol)
+    if members.size < 3:
+        return None
+    intercept += np.median(resid[members])
+    members, resid = members_near(intercept, slope, tol)
+    # Tukey-biweight reweighting: points of a merging neighbour get zero weight
+    robust = np.ones(members.size)
+    for _ in range(6):
+        res = resid[members]
+        sigma = max(1.4826 * np.median(np.abs(res - np.median(res))), 0.05 * tol)
+        z = res / (4.685 * sigma)
+        robust = np.where(np.abs(z) < 1, (1 - z**2) ** 2, 0.0)
+        if np.count_nonzero(robust) < 3:
             return None
-        fit = _line_fit(b[members], v[members], weight[members])
+        fit = _line_fit(b[members], v[members], weight[members] * robust + 1e-300)
         if fit is None:
             return None
         intercept, slope = fit[0], fit[1]
-        # narrow the window to the scatter of the line so that a neighbouring line that
-        # converges on it at low field is not dragged in
-        spread = 1.4826 * np.median(np.abs(v[members] - (intercept + slope * b[members])))
-        window = min(tol, max(4 * spread, 0.25 * tol))
+        resid = v - (intercept + slope * b)
+    members = members[robust > 0]
+    if members.size < 3 or np.unique(b[members]).size < 3:
+        return None
+    fit = _line_fit(b[members], v[members], weight[members])
+    if fit is None:
+        return None
     a, s, cov, rms = fit
     return {"members": members, "points": int(members.size), "intercept": float(a),
             "slope": float(s), "intercept_stderr": float(np.sqrt(cov[0, 0])),
@@ -580,6 +598,13 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes, one_sided_main
         return None
     pool = [h for h in through_origin if h["explained"] >= 0.999 * best]
     chosen = next((h for h in pool if h["k"] == flavours), None)
+    if chosen is not None and _outer_family_is_half_filling(chosen, families, lines, flavours):
+        half = next((h for h in pool if h["k"] == flavours // 2), None)
+        if half is not None:
+            chosen = half
+            notes.append(f"the outermost satellite family has {flavours // 2}-fold Landau levels, "
+                         f"as at half filling, so it is taken as |s| = {flavours // 2}; full "
+                         "filling lies outside the gate window")
     shifted = [h for h in evaluated if h["origin"] != 0.0 and h["full_sides"] == 2
                and h["explained"] >= 0.999 * best]
     if one_sided_main and chosen is not None:
@@ -621,6 +646,27 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes, one_sided_main
     return {"cell_density_guess": chosen["n0"], "origin_density": chosen["origin"],
             "main_band_filling": chosen["main_s"], "assigned": assigned, "neutral": neutral,
             "band_fillings": sorted(fillings, key=float), "families": families}
+
+
+def _outer_family_is_half_filling(hypothesis, families, lines, flavours):
+    """Whether the families put at full filling have half the flavour degeneracy.
+
+    Landau levels from full filling (into the remote band) keep the full
+    flavour degeneracy, those from half filling in a graphene moire are
+    twofold (Cao et al., Nature 556, 80 (2018), from memory); the spacing of
+    the slopes t of a family (their greatest common divisor) measures it.
+    """
+    if flavours % 2:
+        return False
+    outer = [fam for fam, s in zip(families, hypothesis["fills"])
+             if s is not None and abs(s) == flavours]
+    if not outer:
+        return False
+    for fam in outer:
+        slopes = [abs(lines[j]["t"]) for j in fam["lines"]]
+        if len(slopes) < 3 or np.gcd.reduce(slopes) != flavours // 2:
+            return False
+    return True
 
 
 def _band_filling(x, tol, fractions=True):

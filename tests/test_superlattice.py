@@ -20,8 +20,10 @@ from fanmap.superlattice import analyse_superlattice, superlattice_geometry
 ALPHA = 6.0e16      # m^-2 V^-1, a ~30 nm hBN gate (invented device)
 V0 = 0.02           # V
 MAIN = (-12, -8, -4, 4, 8, 12)
-FULL = ((2, 4), (4, 4), (-2, 4), (-4, 4), (2, -4), (4, -4), (-2, -4), (-4, -4))
-HALF = ((2, 2), (-2, 2), (2, -2), (-2, -2))
+# Landau levels keep the fourfold flavour degeneracy from full filling and are twofold from
+# half filling (Cao et al., Nature 556, 80 (2018), from memory): slopes t in steps of 4 and 2.
+FULL = ((4, 4), (8, 4), (-4, 4), (-8, 4), (4, -4), (8, -4), (-4, -4), (-8, -4))
+HALF = ((2, 2), (-2, 2), (4, 2), (2, -2), (-2, -2), (-4, -2))
 
 
 def cell_density(angle_deg):
@@ -29,11 +31,11 @@ def cell_density(angle_deg):
 
 
 def moire_map(angle_deg=1.1, satellites=FULL, *, superlattice=True, zero_field_peaks=True,
-              horizontal=(), seed=0, noise=0.01, rows=81, columns=281, max_field=8.0):
+              horizontal=(), seed=0, noise=0.01, rows=81, columns=361, max_field=8.0):
     """A fan map with main-fan lines, satellite lines and optional horizontal dips."""
     rng = np.random.default_rng(seed)
     n0 = cell_density(angle_deg)
-    half_span = 1.25 * 4 * n0 / ALPHA
+    half_span = 1.6 * 4 * n0 / ALPHA
     gate = np.linspace(-half_span, half_span, columns)
     field = np.linspace(0.0, max_field, rows)
     n = ALPHA * (gate - V0)[None, :]
@@ -162,10 +164,20 @@ def test_auto_reports_no_superlattice_on_a_plain_fan():
 
 
 def test_single_offset_line_is_not_a_superlattice():
-    fan_map = moire_map(satellites=((2, 4),), zero_field_peaks=False)
+    fan_map = moire_map(satellites=((4, 4),), zero_field_peaks=False)
     finding = analyse_superlattice(fan_map, hand_fit(fan_map), material="auto")
     assert not finding.seen and finding.satellites == []
     assert len(finding.offset_lines) == 1
+
+
+def test_outermost_family_with_twofold_levels_is_half_filling():
+    # Full filling outside the gate window: the outermost family has slopes in steps of 2,
+    # so it is half filling (s = +-2), not full filling.
+    fan_map = moire_map(1.1, HALF, zero_field_peaks=False)
+    finding = analyse_superlattice(fan_map, hand_fit(fan_map), material="moire-graphene")
+    assert finding.superlattice["density"] == pytest.approx(4 * cell_density(1.1), rel=0.01)
+    assert sorted((int(s.filling), s.band_filling) for s in finding.satellites) == sorted(HALF)
+    assert any("half filling" in note for note in finding.notes)
 
 
 def test_zero_field_peaks_at_band_fillings():
