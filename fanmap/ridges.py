@@ -115,11 +115,11 @@ def log_signal(resistance, despike=True):
     valid = np.isfinite(r)
     # A floor keeps exact zeros (perfect QH minima) finite and flat: five times the absolute
     # noise, so that noise on a zero-resistance plateau makes no extra minima, and at least
-    # 1e-4 of the row's upper level.
+    # 1e-8 of the row's upper level (dips lie within fewer decades than that).
     upper = np.nanpercentile(np.where(valid, r, np.nan), 90, axis=1, keepdims=True) \
         if valid.any() else np.ones((r.shape[0], 1))
     upper = np.where(np.isfinite(upper) & (upper > 0), upper, 1.0)
-    floor = np.maximum(1e-4 * upper, 5 * _absolute_noise(r))
+    floor = np.maximum(1e-8 * upper, 5 * _absolute_noise(r))
     logr = np.log10(np.maximum(np.where(valid, r, np.nan), floor))
     columns = np.arange(r.shape[1])
     for i in range(r.shape[0]):
