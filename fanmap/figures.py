@@ -133,7 +133,7 @@ def _signal(fan_map, signal=None):
     return da.sortby(S.FIELD).sortby(S.GATE)
 
 
-def colour_scale(values, scale="auto"):
+def colour_scale(values, scale="auto", *, rows_are_field=True):
     """Choose how to colour a resistance map: ``(array, norm, description)``.
 
     ``scale`` is ``"linear"``, ``"log"``, ``"row"`` (each row divided by its
@@ -141,7 +141,9 @@ def colour_scale(values, scale="auto"):
     with field) or ``"auto"``, which picks ``"row"`` when the row medians span
     more than a factor 10, ``"log"`` when the positive values span more than a
     factor 30, and ``"linear"`` otherwise.  Limits are robust percentiles, so
-    a huge neutrality peak does not wash out the fan.
+    a huge neutrality peak does not wash out the fan.  Row normalisation is
+    only chosen automatically when ``rows_are_field`` (fan maps, one row per
+    field value); gate maps get ``"log"`` or ``"linear"``.
 
     Examples
     --------
@@ -165,7 +167,7 @@ def colour_scale(values, scale="auto"):
                 medians = np.nanmedian(np.where(values > 0, values, np.nan), axis=1)
             medians = medians[np.isfinite(medians) & (medians > 0)]
             lo, hi = np.percentile(positive, [1, 99])
-            if medians.size > 1 and medians.max() / medians.min() > 10:
+            if rows_are_field and medians.size > 1 and medians.max() / medians.min() > 10:
                 scale = "row"
             elif lo > 0 and hi / lo > 30:
                 scale = "log"
@@ -843,7 +845,7 @@ def plot_gate_maps(gate_maps, result, *, scale="auto"):
                 continue
             da = _gate_signal(maps[k])
             top, bottom = da[S.TOP_GATE].values, da[S.BOTTOM_GATE].values
-            values, norm, used = colour_scale(da.values, scale)
+            values, norm, used = colour_scale(da.values, scale, rows_are_field=False)
             mesh = _image(ax, top, bottom, values, norm, _style.GATE_COLORMAP)
             _colour_bar(fig, mesh, None, _colour_bar_label(da, used), ax=ax)
             if ridges is not None:
@@ -890,7 +892,10 @@ def _displacement_axis(coord):
 
 
 def plot_nd_map(nd_map, result=None, *, scale="auto"):
-    """A map on (density, displacement): density in 10^12 cm^-2, D/ε0 in V/nm."""
+    """A map on (density, displacement): density in 10^12 cm^-2, D/ε0 in V/nm.
+
+    ``result`` (the GateResult that made the map) adds its capacitance ratio to the title.
+    """
     da = nd_map
     if hasattr(nd_map, "data_vars"):
         name = S.RXX if S.RXX in nd_map.data_vars else next(iter(nd_map.data_vars), None)
@@ -909,7 +914,7 @@ def plot_nd_map(nd_map, result=None, *, scale="auto"):
     else:
         density_label = _axis_label(da["density"], "density")
     displacement, displacement_label = _displacement_axis(da["displacement"])
-    values, norm, used = colour_scale(da.values, scale)
+    values, norm, used = colour_scale(da.values, scale, rows_are_field=False)
     with rc_context(_style.rc_params()):
         fig = _new_figure(6.2, 4.8)
         ax = fig.add_subplot()
@@ -919,10 +924,14 @@ def plot_nd_map(nd_map, result=None, *, scale="auto"):
         ax.axhline(0.0, color="#ffffff", linewidth=0.6, linestyle=":")
         ax.set_xlabel(density_label)
         ax.set_ylabel(displacement_label)
+        field = da.coords.get(S.FIELD)
         title = "map on density and displacement"
-        if result is not None and getattr(result, "displacement_convention", ""):
-            title += f"\n({result.displacement_convention})"
-        fig.suptitle(title, fontsize=_style.FONT_SIZE + 1)
+        if field is not None and field.size == 1:
+            title += f" at B = {float(field):.3g} T"
+        if result is not None and _is_number(result.capacitance_ratio):
+            title += f", C_t/C_b = {result.capacitance_ratio:.4g}"
+        fig.suptitle(title + "\n(sign convention of D: see the report)",
+                     fontsize=_style.FONT_SIZE + 1)
     return fig
 
 

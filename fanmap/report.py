@@ -66,11 +66,14 @@ def _gate_step(fan_map):
 
 
 def _fan_figures(fan_map, result, notes):
-    figures = [_Figure(
-        "fan", "Fitted fan",
-        "The measured map with every fitted line (solid where fitted, thin where extrapolated "
-        "to B = 0), each labelled with its filling factor; the star is the zero-density point.",
-        F.plot_fan(fan_map, result))]
+    caption = ("The measured map with every fitted line (solid where fitted, thin where "
+               "extrapolated to B = 0), each labelled with its filling factor (fractions p/q, "
+               "satellites (t, s)); the star is the zero-density point.")
+    qc = (result.extras or {}).get("quantum_capacitance")
+    if isinstance(qc, dict) and qc.get("significant"):
+        caption += (" Lines are each state's straight fit; the fit's quantum-capacitance model, "
+                    "which bends them near neutrality, is listed under Further analyses.")
+    figures = [_Figure("fan", "Fitted fan", caption, F.plot_fan(fan_map, result))]
     calibrated = (math.isfinite(result.density_per_volt) and result.density_per_volt > 0
                   and math.isfinite(result.zero_density_voltage))
     if calibrated:
@@ -273,17 +276,30 @@ def _value_rows(mapping, skip=()):
     return rows
 
 
+def _cell(value, depth=0):
+    """Compact HTML text of a JSON value for a table cell (long lists point to the JSON)."""
+    if value is None:
+        return ""
+    if isinstance(value, (bool, np.bool_, str)):
+        return _esc(value)
+    if isinstance(value, (int, np.integer)):
+        return _esc(int(value))
+    if isinstance(value, (float, np.floating)):
+        return _num(value, 5)
+    if isinstance(value, dict):
+        if depth:
+            return "…"
+        return "; ".join(f"{_esc(k)} = {_cell(v, depth + 1)}" for k, v in value.items())
+    if isinstance(value, (list, tuple)):
+        if len(value) <= 8 and not any(isinstance(v, (dict, list, tuple)) for v in value):
+            return ", ".join(_cell(v, depth + 1) for v in value)
+        return f"{len(value)} entries (in {RESULT_NAME})"
+    return _esc(value)
+
+
 def _list_of_dicts_table(items):
     keys = list(dict.fromkeys(k for item in items for k in item))
-    rows = []
-    for item in items:
-        row = []
-        for k in keys:
-            v = item.get(k)
-            row.append(_num(v, 5) if isinstance(v, (float, np.floating)) else _esc("" if v is None
-                                                                                  else v))
-        rows.append(row)
-    return _table([_esc(k) for k in keys], rows)
+    return _table([_esc(k) for k in keys], [[_cell(item.get(k)) for k in keys] for item in items])
 
 
 def _dict_section(title, anchor, data, intro=""):
@@ -570,7 +586,8 @@ def write_gate_outputs(out_dir, gate_maps, result, nd_map):
                                "The map transformed to carrier density and displacement field "
                                "with the fitted capacitances.", F.plot_nd_map(nd_map, result)))
     sources = [str(m.attrs.get("source", "")) for m in maps if m.attrs.get("source")]
-    name = Path(result.source or (sources[0] if sources else "gate map")).name
+    name = ", ".join(Path(src).name for src in sources) or (
+        Path(result.source).name if result.source else "gate map")
     when = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     body = [f"<h1>Gate-map fit: {_esc(name)}</h1>",
             f'<p class="meta">{len(maps)} map(s) · written {when} by fanmap '
