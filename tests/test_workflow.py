@@ -1,10 +1,16 @@
 """Workflow files: validation before anything runs, with the line of every problem."""
 
+import importlib.util
 import re
+import shutil
 import textwrap
+from pathlib import Path
 
 import pytest
+from scipy import constants
 
+from fanmap import cli
+from fanmap.archive import read_results_table
 from fanmap.errors import WorkflowError
 from fanmap.workflow import _key_lines, load_workflow, parse_workflow
 
@@ -176,3 +182,83 @@ def test_parse_workflow_resolves_relative_to_the_file(archive):
     wf = parse_workflow('[[devices]]\nname = "D"\nmaps = ["../KR-15/*.nc"]\n', archive / "sub" / "w.toml")
     assert wf.devices[0].maps[0].resolve() == (archive / "KR-15" / "gates_000.nc").resolve()
     assert wf.output_directory == (archive / "sub" / "w-results").resolve()
+
+
+# --- the shipped example workflows, run on the demo archive they describe ----------------------
+
+WORKFLOWS = Path(__file__).resolve().parents[1] / "workflows"
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    """The small demo archive beside copies of the shipped workflow files."""
+    spec = importlib.util.spec_from_file_location("make_demo_archive", WORKFLOWS / "make_demo_archive.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    folder = tmp_path_factory.mktemp("kestrel-row")
+    module.make_demo_archive(folder / "demo-archive", "small")
+    for path in WORKFLOWS.glob("*.toml"):
+        shutil.copy(path, folder / path.name)
+    return folder
+
+
+def sio2_lever_arm(thickness=285e-9, permittivity=3.9):
+    # Parallel-plate lever arm eps0 eps_r / (e d) from CODATA constants (scipy.constants);
+    # eps_r = 3.9 for SiO2 and 3.4 for hBN are handbook values (common practice).
+    return constants.epsilon_0 * permittivity / (constants.e * thickness)
+
+
+def test_shipped_workflows_are_valid(demo):
+    shipped = sorted(WORKFLOWS.glob("*.toml"))
+    assert len(shipped) >= 2
+    for path in shipped:
+        workflow = load_workflow(demo / path.name)
+        assert workflow.devices and all(device.maps for device in workflow.devices)
+
+
+def _rows(folder):
+    return {Path(row["path"]).name: row for row in read_results_table(folder / "results.csv")}
+
+
+@pytest.mark.slow
+def test_fans_workflow_runs_on_the_local_cluster(demo):
+    assert cli.main(["batch", str(demo / "kestrel-row-fans.toml")]) == 0
+    out = demo / "kestrel-row-fans-results"
+    rows = _rows(out)
+    assert len(rows) == 5
+    crashed = rows.pop("fan_2026-03-05_crashed.nc")
+    assert crashed["status"] == "failed" and "not a readable netCDF" in crashed["error"]
+    for name, row in rows.items():
+        assert row["status"] == "ok", (name, row["error"])
+        assert (out / "maps" / row["map"] / "report.html").is_file()
+        assert (out / "maps" / row["map"] / "fan.png").is_file()
+    kr12 = {name: row for name, row in rows.items() if row["device"] == "KR-12"}
+    assert {row["cooldown"] for row in kr12.values()} == {"CD3", "CD4"}
+    for row in kr12.values():
+        assert row["density_per_volt"] == pytest.approx(sio2_lever_arm(), rel=0.03)
+    # V0 moved by about 1.2 V between the cooldowns (the demo's truth), the lever arm did not.
+    v0 = {row["cooldown"]: row["zero_density_voltage"] for row in kr12.values()}
+    assert v0["CD4"] - v0["CD3"] == pytest.approx(1.2, abs=0.15)
+    hall_bar = rows["fan_2026-02-23.nc"]
+    assert hall_bar["device"] == "KR-H3" and hall_bar["density_per_volt"] == pytest.approx(6.0e15, rel=0.03)
+    assert (out / "summary.png").stat().st_size > 0 and (out / "index.html").is_file()
+
+
+@pytest.mark.slow
+def test_dual_gate_workflow_reads_lab_csv_and_flags_the_sweep_limits(demo):
+    assert cli.main(["batch", str(demo / "kestrel-row-dual-gate.toml"), "--workers", "0"]) == 0
+    rows = _rows(demo / "kestrel-row-dual-gate-results")
+    assert set(rows) == {"gates_2026-03-10_0T.nc", "gates_2026-03-10_9T.nc", "backgate_fan_2026-03-11.csv"}
+    assert all(row["status"] == "ok" for row in rows.values()), [r["error"] for r in rows.values()]
+    at_9T = rows["gates_2026-03-10_9T.nc"]
+    assert at_9T["top_capacitance"] == pytest.approx(
+        constants.e * sio2_lever_arm(30e-9, 3.4), rel=0.05)
+    assert at_9T["bottom_capacitance"] == pytest.approx(constants.e * sio2_lever_arm(), rel=0.05)
+    assert rows["gates_2026-03-10_0T.nc"]["capacitance_ratio"] == pytest.approx(
+        (285 / 30) * (3.4 / 3.9), rel=0.1)
+    for row in (at_9T, rows["gates_2026-03-10_0T.nc"]):
+        assert "beyond the device's bottom_gate_limits [-50, 50] V" in row["warnings"]
+    # The CSV holds lock-in microvolts at 10 nA, field in kG, gate in mV: read as the workflow says.
+    fan = rows["backgate_fan_2026-03-11.csv"]
+    assert fan["density_per_volt"] == pytest.approx(sio2_lever_arm(), rel=0.03)
+    assert fan["zero_density_voltage"] == pytest.approx(-1.5, abs=0.1)
