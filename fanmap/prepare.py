@@ -429,7 +429,33 @@ def merge_directions(ds, *, align=True):
 
 # --- Onsager symmetrisation --------------------------------------------------------
 
-def symmetrise(ds, *, keep="positive"):
+def _consensus_offsets(offsets, separation, hysteresis_sign, step):
+    """Smooth per-pair gate offsets with a model: drift linear in the time between the two rows,
+    plus a hysteresis shift where the rows were swept in opposite directions.
+
+    Single-pair estimates scatter (contact mixing and dense low-field rows move the correlation
+    peak); the robust fit over all pairs does not.  Offsets under a fifth of a gate step are dropped.
+    """
+    offsets = np.asarray(offsets, dtype=float)
+    design = np.column_stack([np.ones_like(offsets), np.asarray(separation, dtype=float),
+                              np.asarray(hysteresis_sign, dtype=float)])
+    design = design[:, [0] + [j for j in (1, 2) if np.ptp(design[:, j]) > 0]]
+    if offsets.size < design.shape[1] + 2:
+        model = np.full_like(offsets, np.median(offsets))
+    else:
+        keep = np.ones(offsets.size, dtype=bool)
+        for _ in range(3):
+            coef, *_ = np.linalg.lstsq(design[keep], offsets[keep], rcond=None)
+            model = design @ coef
+            resid = offsets - model
+            spread = 1.4826 * np.median(np.abs(resid[keep]))
+            keep = np.abs(resid) <= max(3 * spread, 0.5 * step)
+            if keep.sum() < design.shape[1] + 1:
+                break
+    return np.where(np.abs(model) < 0.2 * step, 0.0, model)
+
+
+def symmetrise(ds, *, keep="positive", align=True):
     """Symmetrise R_xx and antisymmetrise R_xy over +-B (Onsager reciprocity).
 
     R_xx(B) <- (R_xx(B) + R_xx(-B)) / 2 and R_xy(B) <- (R_xy(B) - R_xy(-B)) / 2
@@ -437,7 +463,10 @@ def symmetrise(ds, *, keep="positive"):
     map has both).  This removes the part of R_xy mixed into R_xx by
     misaligned contacts (and vice versa).  ``keep="positive"`` returns one
     row per |B| (rows without a partner kept as measured, negative ones
-    mirrored with R_xy -> -R_xy); ``keep="both"`` keeps every row.
+    mirrored with R_xy -> -R_xy); ``keep="both"`` keeps every row.  With
+    ``align`` each -B row is first shifted in gate onto its +B partner (by
+    cross-correlating their R_xx), since a drifting V0 or hysteresis moves the
+    features between the two measurements; the shifts are reported.
 
     Returns ``(ds, notes)`` with ``pairs``, the residual asymmetry
     ``rxx_antisymmetric_fraction`` (rms of the antisymmetric part over rms
@@ -466,16 +495,39 @@ def symmetrise(ds, *, keep="positive"):
     rxx = np.asarray(ds[S.RXX].values, dtype=float)
     rxy = np.asarray(ds[S.RXY].values, dtype=float) if S.RXY in ds else None
     new_xx, new_xy = rxx.copy(), None if rxy is None else rxy.copy()
-    sym_xx = (rxx[pos_pairs] + rxx[partner[pos_pairs]]) / 2
-    anti_xx = (rxx[pos_pairs] - rxx[partner[pos_pairs]]) / 2
+    notes = {"pairs": int(pos_pairs.size)}
+    neg_xx = rxx[partner[pos_pairs]]
+    neg_xy = None if rxy is None else rxy[partner[pos_pairs]]
+    if align:
+        # rows at +B and -B were measured at different times: a drifting (or hysteretic) V0
+        # moves every feature; re-sample the -B row onto the +B row before combining
+        gate = ds[S.GATE].values.astype(float)
+        step = _step(gate)
+        max_lag = max(1, min(gate.size // 8, gate.size // 2))
+        offsets = np.zeros(pos_pairs.size)
+        for k, i in enumerate(pos_pairs):
+            a = _normalised_derivative(rxx[i])
+            b = _normalised_derivative(neg_xx[k])
+            if a is not None and b is not None:
+                offsets[k] = _row_lag(a, b, max_lag)[0] * step
+        # +1 where the +B row went up and the -B row down: down(V) = up(V - shift)
+        hysteresis_sign = (direction[pos_pairs] - direction[partner[pos_pairs]]) / 2
+        offsets = _consensus_offsets(offsets, pos_pairs - partner[pos_pairs], hysteresis_sign, step)
+        neg_xx = _shift_rows(neg_xx, gate, offsets)
+        if neg_xy is not None:
+            neg_xy = _shift_rows(neg_xy, gate, offsets)
+        notes["pair_shift_median"] = float(np.median(offsets))
+        notes["pair_shift_max"] = float(np.max(np.abs(offsets)))
+        notes["pairs_shifted"] = int(np.count_nonzero(offsets))
+    sym_xx = (rxx[pos_pairs] + neg_xx) / 2
+    anti_xx = (rxx[pos_pairs] - neg_xx) / 2
     new_xx[pos_pairs] = sym_xx
     new_xx[partner[pos_pairs]] = sym_xx
-    notes = {"pairs": int(pos_pairs.size)}
     with _quiet():
         notes["rxx_antisymmetric_fraction"] = float(np.sqrt(np.nanmean(anti_xx**2) / np.nanmean(sym_xx**2)))
     if rxy is not None:
-        anti_xy = (rxy[pos_pairs] - rxy[partner[pos_pairs]]) / 2
-        sym_xy = (rxy[pos_pairs] + rxy[partner[pos_pairs]]) / 2
+        anti_xy = (rxy[pos_pairs] - neg_xy) / 2
+        sym_xy = (rxy[pos_pairs] + neg_xy) / 2
         new_xy[pos_pairs] = anti_xy
         new_xy[partner[pos_pairs]] = -anti_xy
         new_xy[zero] = 0.0
