@@ -111,7 +111,11 @@ def row_table(model, field, density_range, temperature, *, shape="gaussian",
     thermal = _thermal(omega, temperature)
     stairs = base + np.cumsum(weights_on_grid) - 0.5 * weights_on_grid
     stairs = np.concatenate([np.full(pad, base), stairs, np.full(size - pad - points, stairs[-1])])
-    stairs_spectrum = np.fft.rfft(stairs)
+    # a linear ramp (unchanged by a symmetric kernel) takes out the jump where the periodic
+    # transform wraps round, which long Lorentzian tails would otherwise carry into the grid
+    ramp = np.linspace(stairs[0], stairs[-1], size)
+    stairs_spectrum = np.fft.rfft(stairs - ramp)
+    ramp = ramp[pad:pad + points]
     spectrum = np.fft.rfft(weights_on_grid, size)
     reference_spectrum = np.fft.rfft(reference_weights, size)
 
@@ -119,8 +123,8 @@ def row_table(model, field, density_range, temperature, *, shape="gaussian",
         out = np.fft.irfft(transform * _kernel(omega, width, shape) * thermal, size)
         return out[shift:shift + points]
 
-    density = convolve(stairs_spectrum, widths[0], pad)
-    hall_density = convolve(stairs_spectrum, widths[2], pad)
+    density = convolve(stairs_spectrum, widths[0], pad) + ramp
+    hall_density = convolve(stairs_spectrum, widths[2], pad) + ramp
     extended = convolve(spectrum, widths[1])
     reference = convolve(reference_spectrum, widths[0])
     # a vanishing floor of localised states keeps n(E) strictly increasing

@@ -321,6 +321,11 @@ def simulate_fan(material="graphene-monolayer", *, gate=None, field=None,
         raise InputError("temperature, broadening and mobility must be positive")
     if broadening_shape not in ("gaussian", "lorentzian"):
         raise InputError("broadening_shape must be 'gaussian' or 'lorentzian'")
+    if not (0 < hall_fraction <= extended_fraction <= 1):
+        raise InputError("need 0 < hall_fraction <= extended_fraction <= 1 (widths of the "
+                         "extended-state bands relative to the level width)")
+    if aspect_ratio <= 0:
+        raise InputError("aspect_ratio (L / W of the Hall bar) must be positive")
     twist = float(p.get("twist_angle_deg", 0.0) if twist_angle_deg is None else twist_angle_deg)
     model = _model(material, p, broadening=opts["broadening"],
                    extended_fraction=extended_fraction,

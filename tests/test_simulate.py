@@ -66,6 +66,18 @@ def test_hall_plateaus_sit_at_von_klitzing_values(material, fields, expected):
     assert set(expected) <= set(nearest.astype(int))
 
 
+def test_lorentzian_levels_give_minima_at_the_same_sequence():
+    # the sequence +-4(N + 1/2) does not depend on the level shape (Novoselov 2005); Lorentzian
+    # tails fill the gaps, so R_xx minima are shallower than with Gaussian levels
+    kw = dict(field=[6.0, 6.3], broken_symmetry={}, **CLEAN)
+    lorentz = simulate_fan("graphene-monolayer", broadening_shape="lorentzian", **kw)
+    gauss = simulate_fan("graphene-monolayer", **kw)
+    found = minima_fillings(lorentz, 0)
+    for nu in (-6, -2, 2, 6):
+        assert np.min(np.abs(found - nu)) < 0.15, (nu, found)
+    assert np.min(rho_xx(lorentz)[0]) > 10 * np.min(rho_xx(gauss)[0])
+
+
 def test_fractional_hall_plateaus_at_composite_fermion_fillings():
     # R_xy = h / (nu e^2) at nu = 1/3, 2/3, 2/5 (Tsui et al. 1982; Jain 1989)
     ds = simulate_fan("2deg", gate=np.linspace(-0.6, -0.2, 200), field=[13.5, 14.0], **CLEAN)
@@ -312,6 +324,9 @@ def test_field_options_irregular_steps_zero_row_and_both_signs():
     half = both.sizes["field"] // 2
     assert np.allclose(both.rxx.values[:half][::-1], both.rxx.values[half:], rtol=1e-9)
     assert np.allclose(both.rxy.values[:half][::-1], -both.rxy.values[half:], rtol=1e-9)
+    negative = simulate_fan(field_sign=-1, **SMALL, **CLEAN)
+    assert np.all(negative.field.values < 0)
+    assert np.allclose(negative.rxy.values, -simulate_fan(**SMALL, **CLEAN).rxy.values)
     mixed = simulate_fan(field_sign="both", contact_mixing=0.05, **SMALL, **CLEAN)
     assert not np.allclose(mixed.rxx.values[:half][::-1], mixed.rxx.values[half:], rtol=1e-3)
 
@@ -358,6 +373,8 @@ def test_failed_write_leaves_no_file(tmp_path):
     (dict(interrupted=1.5), "interrupted"),
     (dict(material="graphene-bilayer", fractional=True), "2deg"),
     (dict(field_sign=2), "field_sign"),
+    (dict(hall_fraction=0.8, extended_fraction=0.5), "hall_fraction"),
+    (dict(temperature=-1.0), "positive"),
 ])
 def test_bad_options_raise_clear_errors(kwargs, message):
     with pytest.raises(InputError, match=message):
