@@ -224,6 +224,8 @@ def simulate_fan(material="graphene-monolayer", *, gate=None, field=None,
     broadening : float
         Level width Gamma at 1 T (J); Gamma(B) = broadening sqrt(|B| / 1 T).
     broadening_shape : {"gaussian", "lorentzian"}
+        Level shape.  Lorentzian tails fill the gaps and hold part of every level, so
+        minima are shallower and sit up to ~0.3 in filling off the integers.
     extended_fraction, hall_fraction : float
         Widths of the extended-state bands (sigma_xx, sigma_xy) relative to Gamma.
     mobility : float
