@@ -6,7 +6,8 @@ whole fit (``fanmap.fanfit.fit_fan``, which hands moire maps to
 
 - twist angle error (target |error| < 0.01 deg) and full-filling density error
   (target < 1 %), with the reported standard errors;
-- every inserted satellite (truth_satellites "t:s") named with the right (t, s);
+- every inserted satellite (truth_satellites "t:s", if it stays inside the gate window
+  for MIN_FIELD_RANGE) named with the right (t, s);
   lines found beyond the truth list are counted as *extra* when they start at a
   true band filling (the simulated spectrum has more levels than the list names)
   and as *false* otherwise;
@@ -43,16 +44,37 @@ TWIST_TARGET_DEG = 0.01
 DENSITY_TARGET = 0.01
 
 
-def truth_satellites(fan_map):
-    """Set of (t, s) from the map's truth_satellites attribute ("t:s,t:s")."""
-    text = str(fan_map.attrs.get("truth_satellites", "") or "")
-    return {tuple(int(x) for x in item.split(":")) for item in text.split(",") if item.strip()}
+#: A listed satellite counts as inserted when it stays inside the gate window this long (T);
+#: the simulator also lists lines that only clip a corner of the map.
+MIN_FIELD_RANGE = 1.0
+
+
+def truth_satellites(fan_map, min_field_range=0.0):
+    """Set of (t, s) from truth_satellites ("t:s,t:s") inside the window over min_field_range."""
+    attrs = fan_map.attrs
+    text = str(attrs.get("truth_satellites", "") or "")
+    pairs = {tuple(int(x) for x in item.split(":")) for item in text.split(",") if item.strip()}
+    if not pairs or min_field_range <= 0:
+        return pairs
+    from fanmap.physics import FLUX_QUANTUM_SINGLE_ELECTRON
+
+    alpha = float(attrs["truth_density_per_volt"])
+    density = alpha * (fan_map.gate.values[[0, -1]] - float(attrs["truth_zero_density_voltage"]))
+    field = np.abs(fan_map.field.values)
+    kept = set()
+    for t, s in pairs:
+        n = s * float(attrs["truth_cell_density"]) + t * field / FLUX_QUANTUM_SINGLE_ELECTRON
+        inside = field[(n > density.min()) & (n < density.max())]
+        if inside.size and np.ptp(inside) >= min_field_range:
+            kept.add((t, s))
+    return kept
 
 
 def score(fan_map, result):
     """Per-map figures of the superlattice part of a fan result."""
     attrs = fan_map.attrs
-    truth = truth_satellites(fan_map)
+    listed = truth_satellites(fan_map)
+    truth = truth_satellites(fan_map, MIN_FIELD_RANGE)
     bands = set(int(s) for s in np.atleast_1d(attrs.get("truth_band_fillings", [])))
     sl = result.superlattice
     found = {(int(s.filling), s.band_filling) for s in result.states if s.kind == "satellite"}
@@ -62,14 +84,14 @@ def score(fan_map, result):
         found |= {(int(float(s.filling)), origin) for s in result.states
                   if s.kind in ("integer", "broken-symmetry")}
     row = {
-        "moire": bool(truth),
+        "moire": bool(listed),
         "seen": sl is not None,
         "main_alpha_error": result.density_per_volt / attrs["truth_density_per_volt"] - 1,
         "origin_band_filling": sl.get("main_fit_origin_band_filling") if sl else None,
         "named": len(found & truth), "inserted": len(truth),
         "missing": sorted(truth - found),
-        "extra": sorted(f for f in found - truth if f[1] in bands),
-        "false": sorted(f for f in found - truth if f[1] not in bands),
+        "extra": sorted(f for f in found - listed if f[1] in bands),
+        "false": sorted(f for f in found - listed if f[1] not in bands),
         "twist_error_deg": float("nan"), "twist_stderr_deg": float("nan"),
         "density_error": float("nan"),
     }

@@ -425,8 +425,13 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
         line = _grow_line(b, v, row, points["weight"], claimed, t, u0, k, tol)
         if line is None or line["points"] < min_points:
             continue
-        if np.ptp(b[line["members"]]) < max(min_span, 0.3 * line["field_max"]):
-            continue   # too short, or seen only far from B = 0: its intercept is a long guess
+        # A line seen only far from B = 0 is a long extrapolation (often a chain of
+        # crossings), unless the gate window cuts it off at its low-field end.
+        start = line["intercept"] + line["slope"] * line["field_min"]
+        cut_by_window = min(abs(start - gate_lo), abs(start - gate_hi)) < 3 * step
+        if np.ptp(b[line["members"]]) < max(min_span, 0 if cut_by_window else
+                                            0.3 * line["field_max"]):
+            continue
         # a real line is resolved on most rows it crosses; crossings of other lines that
         # happen to align are sparse
         rows_spanned = np.sum((row_fields >= line["field_min"]) & (row_fields <= line["field_max"]))

@@ -13,8 +13,11 @@ import xarray as xr
 from scipy import signal
 
 from fanmap import physics as ph
+from fanmap import ridges
 from fanmap.errors import InputError, NoFanError
+from fanmap.fanfit import fit_fan
 from fanmap.results import FanResult, State, to_jsonable
+from fanmap.simulate import simulate_fan
 from fanmap.superlattice import analyse_superlattice, superlattice_geometry
 
 ALPHA = 6.0e16      # m^-2 V^-1, a ~30 nm hBN gate (invented device)
@@ -248,3 +251,109 @@ def test_bad_input_gets_clear_errors():
         analyse_superlattice(fan_map, broken)
     with pytest.raises(InputError, match="flavours"):
         analyse_superlattice(fan_map, hand_fit(fan_map), flavours=0)
+
+
+# --- simulated moire fans (fanmap.simulate, truth in truth_* attributes) ------------------
+
+def truth_satellites(fan_map, min_field_range=0.0):
+    """(t, s) of truth_satellites that stay inside the gate window over ``min_field_range`` T.
+
+    The simulator lists a satellite once its gap is resolved, also when the line only
+    clips a corner of the map; those few points cannot be fitted as a line.
+    """
+    attrs = fan_map.attrs
+    alpha = float(attrs["truth_density_per_volt"])
+    v0 = float(attrs["truth_zero_density_voltage"])
+    n0 = float(attrs["truth_cell_density"])
+    density = alpha * (fan_map.gate.values[[0, -1]] - v0)
+    field = np.abs(fan_map.field.values)
+    out = set()
+    for item in str(attrs["truth_satellites"]).split(","):
+        if not item:
+            continue
+        t, s = (int(x) for x in item.split(":"))
+        n = s * n0 + t * field / ph.FLUX_QUANTUM_SINGLE_ELECTRON
+        inside = field[(n > density.min()) & (n < density.max())]
+        if inside.size and np.ptp(inside) >= min_field_range:
+            out.add((t, s))
+    return out
+
+
+def truth_scale_fit(fan_map):
+    """Main-fan result with the simulator's true alpha, V0 and main fillings.
+
+    The ridge points come from the project's ridge finder; only the main fan
+    fit is replaced by the truth, so these tests measure the superlattice step.
+    """
+    attrs = fan_map.attrs
+    alpha = float(attrs["truth_density_per_volt"])
+    v0 = float(attrs["truth_zero_density_voltage"])
+    logr, valid = ridges.log_signal(fan_map.rxx.values)
+    minima = ridges.find_row_minima(logr, valid, fan_map.gate.values, fan_map.field.values)
+    per_filling = 1 / (alpha * ph.FLUX_QUANTUM_SINGLE_ELECTRON)
+    step = float(fan_map.gate[1] - fan_map.gate[0])
+    state = np.full(len(minima), -1)
+    states = []
+    for i, nu in enumerate(int(x) for x in np.atleast_1d(attrs["truth_main_fillings"])):
+        on = np.abs(minima.gate - (v0 + nu * per_filling * minima.field)) < step
+        state[on] = i
+        states.append(State(str(nu), "integer", nu * per_filling, v0, int(on.sum()),
+                            float(minima.field[on].min()) if on.any() else float("nan"),
+                            float(minima.field.max())))
+    return FanResult(
+        density_per_volt=alpha, density_per_volt_stderr=1e-3 * alpha,
+        capacitance_per_area=ph.capacitance_from_lever_arm(alpha), zero_density_voltage=v0,
+        zero_density_voltage_stderr=1e-3, density_offset=-alpha * v0, degeneracy=4,
+        berry_phase=2, scale_from="material", states=states,
+        ridge_points={"field": minima.field, "gate": minima.gate, "row": minima.row,
+                      "state": state, "weight": minima.weight})
+
+
+def simulated(angle, correlated, hall, seed=5):
+    return simulate_fan("moire-graphene", twist_angle_deg=angle, correlated_states=correlated,
+                        hall=hall, seed=seed, gate=np.linspace(-6, 6, 500),
+                        field=np.linspace(0.25, 8, 160))
+
+
+@pytest.mark.parametrize("angle,hall", [(0.9, True), (1.1, False), (1.3, True), (1.5, False)])
+@pytest.mark.parametrize("correlated", [False, True], ids=["s4", "s2s4"])
+def test_simulated_moire_fans(angle, hall, correlated):
+    fan_map = simulated(angle, correlated, hall)
+    finding = analyse_superlattice(fan_map, truth_scale_fit(fan_map), material="moire-graphene")
+    attrs = fan_map.attrs
+    sl = finding.superlattice
+    assert abs(sl["twist_angle_deg"] - float(attrs["truth_twist_angle_deg"])) < 0.01
+    assert sl["density"] == pytest.approx(float(attrs["truth_full_filling_density"]), rel=0.01)
+    truth = truth_satellites(fan_map, min_field_range=1.0)
+    found = {(int(s.filling), s.band_filling) for s in finding.satellites}
+    bands = set(int(s) for s in np.atleast_1d(attrs["truth_band_fillings"]))
+    # every satellite found starts at a true band filling, with the slope step of that
+    # filling (fourfold levels from full filling, twofold from half filling)
+    assert {s for _, s in found} <= bands
+    assert all(t % (4 if abs(s) == 4 else 2) == 0 for t, s in found)
+    # most inserted lines are named (the weakest inward lines from full filling can be missed)
+    assert len(found & truth) >= 0.75 * len(truth)
+
+
+@pytest.mark.parametrize("material", ["graphene-monolayer", "graphene-bilayer", "2deg"])
+def test_no_satellite_on_simulated_fans_without_superlattice(material):
+    fan_map = simulate_fan(material, seed=5, gate=None, field=None)
+    finding = analyse_superlattice(fan_map, truth_scale_fit(fan_map), material="auto")
+    assert not finding.seen and finding.satellites == [] and finding.superlattice is None
+
+
+@pytest.mark.parametrize("correlated", [False, True], ids=["s4", "s2s4"])
+def test_fit_fan_reports_the_twist_angle(correlated):
+    # The whole fit on a simulated map with the Hall channel: fanmap.fanfit.fit_fan hands
+    # the map to the superlattice analysis and keeps its satellites among the states.
+    fan_map = simulate_fan("moire-graphene", twist_angle_deg=1.3, correlated_states=correlated,
+                           hall=True, seed=3)
+    result = fit_fan(fan_map, material="moire-graphene")
+    assert abs(result.superlattice["twist_angle_deg"] - 1.3) < 0.01
+    assert result.superlattice["twist_angle_deg_stderr"] > 0
+    satellites = {(int(s.filling), s.band_filling) for s in result.states
+                  if s.kind == "satellite"}
+    if result.superlattice["main_fit_origin_band_filling"]:
+        origin = result.superlattice["main_fit_origin_band_filling"]
+        satellites |= {(int(s.filling), origin) for s in result.states if s.kind == "integer"}
+    assert truth_satellites(fan_map, min_field_range=1.0) <= satellites
