@@ -21,7 +21,7 @@ import numpy as np
 from scipy import interpolate, signal
 
 __all__ = ["log_signal", "best_ratio", "profile", "rotated_grid", "trace_extrema",
-           "symmetry_centre", "sample_along_line"]
+           "symmetry_centre", "minimum_location", "sample_along_line"]
 
 
 def log_signal(values):
@@ -383,3 +383,44 @@ def symmetry_centre(x, y, min_overlap=0.3):
     finite_costs = costs[np.isfinite(costs)]
     dip = float(cost / np.median(finite_costs)) if finite_costs.size else 1.0
     return centre, float(stderr), dip, bool(at_edge)
+
+
+def minimum_location(x, y, min_rise=0.2):
+    """Position of a clear minimum of y(x) (a log resistance), with its standard error.
+
+    The curve is smoothed with a running median; the minimum counts when y
+    rises by at least ``min_rise`` on both sides of it.  A parabola through the
+    lowest quarter of the dip (between the minimum and the lower of the two
+    rises) gives the position.  Returns ``(x_min, stderr)`` or None.
+    """
+    from scipy.ndimage import median_filter
+
+    x = np.asarray(x, float)
+    y = np.asarray(y, float)
+    keep = np.isfinite(x) & np.isfinite(y)
+    order = np.argsort(x[keep])
+    x, y = x[keep][order], y[keep][order]
+    if x.size < 12:
+        return None
+    smooth = median_filter(y, size=9, mode="nearest")
+    low = int(np.argmin(smooth))
+    rise = min(smooth[:low + 1].max(), smooth[low:].max()) - smooth[low] if 0 < low < x.size - 1 else 0.0
+    if rise < min_rise:
+        return None
+    sel = smooth <= smooth[low] + 0.25 * rise
+    # The contiguous stretch around the minimum only.
+    edges = np.flatnonzero(~sel)
+    left = edges[edges < low].max() + 1 if np.any(edges < low) else 0
+    right = edges[edges > low].min() if np.any(edges > low) else x.size
+    xs, ys = x[left:right], y[left:right]
+    if xs.size < 5:
+        return None
+    coef, cov = np.polyfit(xs - x[low], ys, 2, cov=True)
+    if coef[0] <= 0:
+        return float(x[low]), float(np.ptp(xs) / 2)
+    vertex = -coef[1] / (2 * coef[0])
+    grad = np.array([coef[1] / (2 * coef[0] ** 2), -1 / (2 * coef[0]), 0.0])
+    stderr = float(np.sqrt(max(grad @ cov @ grad, 0.0)))
+    if not (xs[0] <= vertex + x[low] <= xs[-1]):
+        return float(x[low]), float(np.ptp(xs) / 2)
+    return float(vertex + x[low]), max(stderr, float(np.median(np.diff(xs))) / 2)

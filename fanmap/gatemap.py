@@ -16,6 +16,8 @@ neutral point where the resistance at neutrality is even in D.
 map on a regular (n, D) grid and back.  D is given as D/eps0 in V/m.
 """
 
+import warnings
+
 import numpy as np
 import xarray as xr
 from scipy import interpolate, signal
@@ -475,18 +477,47 @@ def _neutral_segment(arrays, q, k, samples=None):
     return np.linspace(lo, hi, n)
 
 
+def _ridge_envelope(arrays, q, k, reach=3, smooth=9):
+    """Log of the highest measured R near the neutrality line, along the line.
+
+    A ridge narrower than the gate step is sampled at a random phase by each
+    trace, so single maxima scatter far below the true height; the running
+    maximum over ``smooth`` neighbouring traces is an envelope that keeps the
+    ridge's true dependence on D.  Traces are rows or columns, whichever the
+    line crosses more squarely.  Returns ``(bottom-gate voltages, envelope)``.
+    """
+    from scipy.ndimage import maximum_filter1d
+
+    top, bottom, values = arrays["top"], arrays["bottom"], arrays["rxx"]
+    rows = q * (bottom[1] - bottom[0]) / (top[1] - top[0]) <= 1.0
+    if rows:
+        line = (k - q * bottom - top[0]) / (top[1] - top[0])
+        data, where = values, bottom
+    else:
+        line = ((k - top) / q - bottom[0]) / (bottom[1] - bottom[0])
+        data, where = values.T, (k - top) / q
+    centre = np.rint(line).astype(int)
+    inside = (centre >= reach) & (centre < data.shape[1] - reach)
+    offsets = np.arange(-reach, reach + 1)
+    idx = centre[inside][:, None] + offsets[None, :]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        peak = np.nanmax(data[np.flatnonzero(inside)[:, None], idx], axis=1)
+    good = np.isfinite(peak) & (peak > 0)
+    vb = where[inside][good]
+    envelope = maximum_filter1d(np.log(peak[good]), size=smooth, mode="nearest")
+    return vb, envelope
+
+
 def _neutral_point(maps, q, k):
     """Bottom-gate voltage of the neutral point where R at neutrality is even in D."""
     estimates = []
     preferred = [m for m in maps if m["mode"] == "neutrality"] or maps
     for m in preferred:
+        pts = None if m["mode"] == "neutrality" else m.get("neutral_points")
         if m["mode"] == "neutrality":
-            # The ridge's area above its own background: free of the contact resistance and
-            # of where a narrow ridge falls between pixels.
-            pts = m["points"]
-        else:
-            pts = m.get("neutral_points")
-        if pts is not None:
+            vb, values = _ridge_envelope(m["arrays"], q, k)
+        elif pts is not None:
             # Leave out points off the line (a crossing contact feature, say).
             u = pts["top"] + q * pts["bottom"]
             spread = 1.4826 * np.median(np.abs(u - np.median(u))) + 1e-12
@@ -500,10 +531,18 @@ def _neutral_point(maps, q, k):
         if vb.size < 9:
             continue
         centre, stderr, dip, at_edge = ridges.symmetry_centre(vb, values)
+        lowest = ridges.minimum_location(vb, values)
         m["symmetry"] = {"bottom_gate": centre, "stderr": stderr, "dip": dip,
-                         "at_edge": at_edge}
-        if np.isfinite(centre) and not at_edge and dip < 0.5:
-            estimates.append((centre, stderr))
+                         "at_edge": at_edge, "minimum": lowest}
+        if lowest is None:
+            continue        # no clear minimum of R(D): no displacement-field signature
+        symmetric = np.isfinite(centre) and not at_edge and dip < 0.5
+        agree = symmetric and abs(centre - lowest[0]) < max(
+            3 * np.hypot(stderr, lowest[1]), 0.03 * np.ptp(vb))
+        if agree:
+            estimates.append((centre, stderr, "symmetry"))
+        else:
+            estimates.append((lowest[0], lowest[1], "minimum"))
     if not estimates:
         return None
     values = np.array([e[0] for e in estimates])
@@ -512,7 +551,8 @@ def _neutral_point(maps, q, k):
     stderr = np.sqrt(1.0 / weights.sum())
     if values.size > 1:
         stderr = max(stderr, np.std(values, ddof=1) / np.sqrt(values.size))
-    return float(centre), float(stderr)
+    how = {e[2] for e in estimates}
+    return float(centre), float(stderr), ("symmetry" if how == {"symmetry"} else "minimum")
 
 
 # --- public API ----------------------------------------------------------------------
@@ -661,6 +701,9 @@ def fit_gates(gate_maps, *, material="auto", field=None, thickness=(None, None),
     if fit["has_k"]:
         k, var_k, cov_qk = coef[1], cov[1, 1], cov[0, 1]
         centre = _neutral_point(maps, q, k)
+        if centre is not None and centre[2] == "minimum":
+            warnings.append("the resistance along neutrality is not even in D: D = 0 is taken at "
+                            "its minimum (where a layer-polarisation gap closes); check the offsets")
         if centre is None:
             ref = next(m for m in maps if _neutral_segment(m["arrays"], q, k).size) \
                 if any(_neutral_segment(m["arrays"], q, k).size for m in maps) else None
@@ -674,8 +717,9 @@ def fit_gates(gate_maps, *, material="auto", field=None, thickness=(None, None),
                             "the middle of the neutral line in the map, their errors its length")
             neutral_from = "middle of neutral line"
         else:
-            neutral_from = "symmetry of R(D) at neutrality"
-        bot_off, bot_off_err = centre
+            neutral_from = ("symmetry of R(D) at neutrality" if centre[2] == "symmetry"
+                            else "minimum of R(D) at neutrality")
+        bot_off, bot_off_err = centre[:2]
         top_off = k - q * bot_off
         top_off_err = np.sqrt(var_k + bot_off**2 * var_q - 2 * bot_off * cov_qk
                               + q**2 * bot_off_err**2)
