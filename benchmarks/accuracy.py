@@ -18,6 +18,7 @@ import time
 CASE_MODULES = [
     "_cases_fan",            # main fan fit: alpha, V0, degeneracy, Berry phase, fractions
     "_cases_superlattice",   # moire satellites, twist angle
+    "_cases_gates",          # dual-gate maps: C_t, C_b, ratio, offsets
 ]
 
 
