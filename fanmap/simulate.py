@@ -739,13 +739,17 @@ def simulate_gate_map(material="graphene-bilayer", *, top_gate=None, bottom_gate
     return ds
 
 
-def simulate_temperature_series(material="2deg", temperatures=(0.3, 0.6, 1.0, 1.5, 2.2, 3.0),
+def simulate_temperature_series(material="2deg", temperatures=(0.4, 0.8, 1.2, 1.6, 2.0, 2.5),
                                 **options):
     """Fan maps that differ only in temperature (K), for effective-mass checks.
 
     Every other option (and the seed, hence the noise) is shared; see
     :func:`simulate_fan`.  The Shubnikov-de Haas amplitude then follows the
-    Lifshitz-Kosevich factor X / sinh X, X = 2 pi^2 k_B T m* / (hbar e B).
+    Lifshitz-Kosevich factor X / sinh X, X = 2 pi^2 k_B T m* / (hbar e B), as long
+    as the oscillations are small (LK is a small-amplitude result).  For the 2DEG
+    the level width therefore defaults to 1 meV at 1 T (a shorter quantum lifetime
+    than the clean preset), which keeps the relative amplitude below about 0.2 up
+    to 1 T; pass ``broadening`` to override.
 
     Examples
     --------
@@ -756,6 +760,8 @@ def simulate_temperature_series(material="2deg", temperatures=(0.3, 0.6, 1.0, 1.
     """
     if len(temperatures) < 2:
         raise InputError("a temperature series needs at least two temperatures")
+    if material == "2deg":
+        options.setdefault("broadening", 1.0 * MEV)
     return [simulate_fan(material, temperature=float(t), **options) for t in temperatures]
 
 
