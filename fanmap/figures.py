@@ -742,17 +742,7 @@ def _safe_weights(weight):
     return weight if weight.sum() > 0 else np.ones_like(weight)
 
 
-def index_plot_data(crosschecks):
-    """The Landau index plot inside a cross-check dict, or None.
-
-    Reads ``crosschecks["index_plot"]`` as written by
-    :func:`fanmap.crosscheck.landau_index_plot`: arrays ``inverse_field``
-    (1/T) and ``index`` (N), the oscillation ``frequency`` B_F (T) and the
-    offset ``intercept`` = γ with ``intercept_stderr``, for N = B_F/B − γ.
-    """
-    if not crosschecks:
-        return None
-    data = crosschecks.get("index_plot")
+def _one_index_plot(data):
     if not isinstance(data, dict):
         return None
     x = np.asarray(data.get("inverse_field", []), dtype=float)
@@ -760,46 +750,64 @@ def index_plot_data(crosschecks):
     if x.size == 0 or x.size != y.size:
         return None
     return {"inverse_field": x, "index": y, "frequency": data.get("frequency"),
-            "gate": data.get("gate"),
-            "intercept": data.get("intercept", crosschecks.get("index_plot_intercept")),
-            "intercept_stderr": data.get("intercept_stderr",
-                                         crosschecks.get("index_plot_intercept_stderr"))}
+            "gate": data.get("gate"), "intercept": data.get("intercept"),
+            "intercept_stderr": data.get("intercept_stderr")}
+
+
+def index_plot_data(crosschecks):
+    """The Landau index plots inside a cross-check dict (a list, empty when there are none).
+
+    Reads ``crosschecks["index_plots"]`` (or the single ``"index_plot"``) as
+    written by :func:`fanmap.crosscheck.landau_index_plot`: arrays
+    ``inverse_field`` (1/T) and ``index`` (N), the oscillation ``frequency``
+    B_F (T), the gate voltage and the offset ``intercept`` = γ with
+    ``intercept_stderr``, for N = B_F/B − γ.
+    """
+    if not crosschecks:
+        return []
+    plots = crosschecks.get("index_plots") or [crosschecks.get("index_plot")]
+    return [p for p in map(_one_index_plot, plots) if p is not None]
 
 
 def plot_index_plot(result):
-    """Landau index N versus 1/B of the oscillation minima, with its straight-line fit.
+    """Landau index N versus 1/B of the oscillation minima, with straight-line fits.
 
-    The fit N = B_F/B − γ meets the N axis at −γ: γ = ½ for Berry phase π,
-    0 for 0 or 2π (standard result; e.g. Zhang et al., Nature 438, 201 (2005)).
+    One series per gate voltage the cross-checks analysed.  Each fit
+    N = B_F/B − γ meets the N axis at −γ: γ = ½ for Berry phase π, 0 for 0 or
+    2π (standard result; e.g. Zhang et al., Nature 438, 201 (2005)).
     """
-    data = index_plot_data(result.crosschecks)
-    if data is None:
+    plots = index_plot_data(result.crosschecks)
+    if not plots:
         raise InputError("the result has no Landau index-plot data; run the cross-checks")
-    x, y = data["inverse_field"], data["index"]
+    x_max = max(float(p["inverse_field"].max()) for p in plots) * 1.05
     with rc_context(_style.rc_params()):
-        fig = _new_figure(5.0, 3.8)
+        fig = _new_figure(5.6, 4.0)
         ax = fig.add_subplot()
-        style = _style.SERIES_STYLES[0]
-        ax.plot(x, y, linestyle="none", markersize=5, label="minima", **style)
-        frequency, gamma = data["frequency"], data["intercept"]
-        if frequency is not None and gamma is not None and np.isfinite([frequency, gamma]).all():
-            xs = np.linspace(0, x.max() * 1.05, 50)
-            err = data["intercept_stderr"]
-            err_text = f" ± {err:.2g}" if err is not None and np.isfinite(err) else ""
-            ax.plot(xs, frequency * xs - gamma, color=_style.SERIES_STYLES[1]["color"],
-                    linestyle="--", linewidth=1.2,
-                    label=_text_minus(f"N = B_F/B − γ: B_F = {frequency:.4g} T, "
-                                      f"γ = {gamma:.3f}{err_text}"))
+        for k, data in enumerate(plots[:len(_style.SERIES_STYLES)]):
+            style = _style.SERIES_STYLES[k]
+            where = (_text_minus(f"{data['gate']:.4g} V") if _is_number(data["gate"])
+                     else f"series {k + 1}")
+            frequency, gamma = data["frequency"], data["intercept"]
+            label = where
+            if _is_number(frequency) and _is_number(gamma):
+                err = data["intercept_stderr"]
+                err_text = f" ± {err:.2g}" if _is_number(err) else ""
+                label = _text_minus(f"{where}: B_F = {frequency:.4g} T, γ = {gamma:.3f}{err_text}")
+                xs = np.linspace(0, x_max, 50)
+                ax.plot(xs, frequency * xs - gamma, color=style["color"], linestyle="--",
+                        linewidth=1.0)
+            ax.plot(data["inverse_field"], data["index"], linestyle="none", markersize=5,
+                    label=label, **style)
         for ref, text in ((-0.5, "γ = ½ (Berry phase π)"), (0.0, "γ = 0 (Berry phase 0 or 2π)")):
             ax.axhline(ref, color="#999999", linewidth=0.6, linestyle=":")
-            ax.text(x.max() * 1.04, ref, text, ha="right", va="bottom",
+            ax.text(x_max * 0.99, ref, text, ha="right", va="bottom",
                     fontsize=_style.FONT_SIZE - 2, color="#555555")
-        ax.set_xlim(0, x.max() * 1.05)
+        ax.set_xlim(0, x_max)
         ax.set_xlabel("1/B (1/T)")
         ax.set_ylabel("Landau index N")
-        ax.legend(loc="upper left")
-        where = f" at gate voltage {data['gate']:.4g} V" if _is_number(data["gate"]) else ""
-        fig.suptitle(_text_minus(f"Landau index plot{where}"), fontsize=_style.FONT_SIZE + 1)
+        ax.legend(loc="upper left", title="gate voltage: fit N = B_F/B − γ",
+                  title_fontsize=_style.FONT_SIZE - 1)
+        fig.suptitle("Landau index plot", fontsize=_style.FONT_SIZE + 1)
     return fig
 
 

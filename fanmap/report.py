@@ -96,7 +96,7 @@ def _fan_figures(fan_map, result, notes):
             F.plot_residuals(result, gate_step=_gate_step(fan_map))))
     else:
         notes.append("the result carries no ridge points: the residual figure is not drawn")
-    if F.index_plot_data(result.crosschecks) is not None:
+    if F.index_plot_data(result.crosschecks):
         figures.append(_Figure(
             "index_plot", "Landau index plot",
             "Landau index of the oscillation minima versus 1/B; the intercept is the Berry-phase "

@@ -155,7 +155,7 @@ def test_index_plot_draws_the_fitted_line():
     assert np.allclose(10.0 * points.get_xdata() - 0.5, points.get_ydata())
     result = synthetic_result()
     result.crosschecks = {"hall_density_per_volt": 1.0}
-    assert F.index_plot_data(result.crosschecks) is None
+    assert F.index_plot_data(result.crosschecks) == []
     with pytest.raises(InputError, match="index-plot"):
         F.plot_index_plot(result)
 

@@ -220,3 +220,26 @@ def test_batch_table_as_columns(tmp_path):
 def test_output_paths_are_paths(fan_outputs):
     _, written, _ = fan_outputs
     assert all(isinstance(p, Path) for p in written.values())
+
+
+@pytest.mark.slow
+def test_report_of_the_shipped_monolayer_sample(tmp_path):
+    from fanmap.fanfit import fit_fan
+    from fanmap.reading import open_map
+
+    sample = Path(__file__).resolve().parents[1] / "sample_maps" / "mx07_monolayer_fan.nc"
+    fan_map = open_map(sample)
+    result = fit_fan(fan_map, material="graphene-monolayer")
+    written = R.write_fan_outputs(tmp_path, fan_map, result)
+    page = written["report.html"].read_text(encoding="utf-8")
+    text = _text(page)
+    # Monolayer graphene: fourfold levels, Berry phase pi (Novoselov et al., Nature 438, 197
+    # (2005); Zhang et al., Nature 438, 201 (2005)).
+    assert re.search(r"<td>degeneracy g</td><td[^>]*>4</td>", page)
+    assert re.search(r"<td>Berry phase</td><td[^>]*>π</td>", page)
+    assert "Simulated map: ground truth" in text
+    states = re.search(r'<h2 id="states">.*?</table>', page, re.S).group(0)
+    assert states.count("<tr>") == len(result.states) + 1
+    for state in result.states:
+        assert f"<td>{html.escape(R.F.state_label(state))}</td>" in states
+    assert {"fan.png", "filling.png", "density.png", "residuals.png"} <= set(written)
