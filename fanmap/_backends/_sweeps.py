@@ -45,23 +45,23 @@ def split_points(fast, slow, breaks=None):
     if slow_thr > 0:
         starts.update((np.flatnonzero(np.abs(np.nan_to_num(d_slow)) > slow_thr) + 1).tolist())
     d_fast, fast_thr = _significant_steps(fast)
-    starts = sorted(starts)
-    out = []
-    bounds = starts + [n]
-    for a, b in zip(bounds[:-1], bounds[1:]):
-        out.append(a)
-        direction = 0
-        for i in range(a, b - 1):
-            step = d_fast[i]
-            if not np.isfinite(step) or abs(step) <= fast_thr:
-                continue
-            sign = 1 if step > 0 else -1
-            if direction == 0:
-                direction = sign
-            elif sign != direction:
-                out.append(i + 1)
-                direction = 0
-    return np.asarray(sorted(set(out)), dtype=int)
+    starts = np.asarray(sorted(starts), dtype=int)
+    # a sweep also ends where the fast axis turns: the first significant step against the
+    # current direction starts a new sweep, whose direction the next step sets
+    sig = np.flatnonzero(np.isfinite(d_fast) & (np.abs(d_fast) > fast_thr))
+    is_start = np.zeros(n + 1, dtype=bool)
+    is_start[starts] = True
+    sig = sig[~is_start[sig + 1]]
+    segment = np.searchsorted(starts, sig, side="right")
+    sign = np.sign(d_fast[sig])
+    turn = np.zeros(sig.size, dtype=bool)
+    turn[1:] = (sign[1:] != sign[:-1]) & (segment[1:] == segment[:-1])
+    # within a run of consecutive turns only every other one starts a sweep
+    index = np.arange(sig.size)
+    last_calm = np.maximum.accumulate(np.where(~turn, index, -1))
+    rank = index - last_calm - 1
+    splits = sig[turn & (rank % 2 == 0)] + 1
+    return np.unique(np.concatenate([starts, splits]))
 
 
 def cut_sweeps(fast, slow, signals, breaks=None):

@@ -10,7 +10,9 @@ block.  The result is a raw dataset along dimension ``point`` with a
 ``BLOCK`` variable numbering the blank-line separated blocks.
 """
 
+import io
 import re
+import warnings
 
 import numpy as np
 import xarray as xr
@@ -97,7 +99,9 @@ def read_text(path):
         text = data.decode("utf-8-sig")
     except UnicodeDecodeError:
         text = data.decode("latin-1")
+    del data
     lines = text.splitlines()
+    del text
 
     notes = []
     comments = []          # comment lines seen before the header/data
@@ -124,8 +128,8 @@ def read_text(path):
             decimal_comma = delim == ";" and "," in line
         if delim == ";" and not rows and "," in line and not decimal_comma:
             decimal_comma = _is_numeric_line(_split(line, delim), True)
-        tokens = _split(line, delim)
         if header is None:
+            tokens = _split(line, delim)
             if _is_numeric_line(tokens, decimal_comma):
                 header = _header_from_comments(comments, delim, len(tokens))
                 header_line_no = 0
@@ -133,28 +137,40 @@ def read_text(path):
                 header = [split_header_name(t) for t in _header_tokens(line, delim, len(tokens))]
                 header_line_no = number
                 continue
-        if not _is_numeric_line(tokens, decimal_comma):
-            repeated = [split_header_name(t) for t in _header_tokens(line, delim, len(tokens))]
-            if [n for n, _ in repeated] == [n for n, _ in header]:
-                if [u for _, u in repeated] != [u for _, u in header]:
-                    raise InputError(
-                        f"{path}: mixed units in one file: line {header_line_no or 1} has "
-                        f"{_fmt_header(header)} but line {number} has {_fmt_header(repeated)}; "
-                        "split the file at the second header or convert it to one set of units")
-                pending_break = bool(rows)
+        if line[0] in _NUMERIC_START:
+            # fast path: count the fields here, convert all lines at once below
+            n_tokens = line.count(delim) + 1 if delim is not None else len(line.split())
+            if n_tokens != len(header):
+                bad_lines.append(number)
                 continue
-            bad_lines.append(number)
+            if pending_break:
+                block += 1
+                pending_break = False
+            rows.append(line)
+            blocks.append(block)
+            line_numbers.append(number)
             continue
-        if len(tokens) != len(header):
-            bad_lines.append(number)
+        tokens = _split(line, delim)
+        repeated = [split_header_name(t) for t in _header_tokens(line, delim, len(tokens))]
+        if [n for n, _ in repeated] == [n for n, _ in header]:
+            if [u for _, u in repeated] != [u for _, u in header]:
+                raise InputError(
+                    f"{path}: mixed units in one file: line {header_line_no or 1} has "
+                    f"{_fmt_header(header)} but line {number} has {_fmt_header(repeated)}; "
+                    "split the file at the second header or convert it to one set of units")
+            pending_break = bool(rows)
             continue
-        if pending_break:
-            block += 1
-            pending_break = False
-        rows.append(_parse_numbers(tokens, decimal_comma))
-        blocks.append(block)
-        line_numbers.append(number)
+        bad_lines.append(number)
 
+    if rows:
+        table, unreadable = _convert(rows, delim, decimal_comma, len(header))
+        if unreadable:
+            bad_lines = sorted(bad_lines + [line_numbers[i] for i in unreadable])
+            keep = np.setdiff1d(np.arange(len(rows)), unreadable)
+            table = table[keep]
+            blocks = [blocks[i] for i in keep]
+            line_numbers = [line_numbers[i] for i in keep]
+            rows = [rows[i] for i in keep]
     if header is not None and not rows and bad_lines:
         raise InputError(f"{path}: no line after the header reads as {len(header)} numbers "
                          f"({_fmt_header(header)}); first bad line: {bad_lines[0]}")
@@ -174,7 +190,6 @@ def read_text(path):
                      f"(line {trailing[0]}: an interrupted write?)")
 
     names = _unique_names([n for n, _ in header], path)
-    table = np.asarray(rows, dtype=float)
     ds = xr.Dataset()
     for i, (name, (_, unit)) in enumerate(zip(names, header)):
         attrs = {"units": unit} if unit else {}
@@ -184,6 +199,36 @@ def read_text(path):
     if delim == ";" and decimal_comma:
         notes.append("semicolon-separated with decimal commas")
     return ds, notes
+
+
+_NUMERIC_START = frozenset("0123456789+-.nNiI")
+
+
+def _convert(lines, delim, decimal_comma, n_columns):
+    """All data lines to a float table at once; falls back to line by line to find bad ones.
+
+    Returns ``(table, indices of unreadable lines)``.
+    """
+    text = "\n".join(lines)
+    if decimal_comma:
+        text = text.replace(",", ".")
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            table = np.loadtxt(io.StringIO(text), delimiter=delim if delim else None, dtype=float,
+                               ndmin=2, comments=None, quotechar='"')
+        if table.shape == (len(lines), n_columns):
+            return table, []
+    except ValueError:
+        pass
+    table = np.full((len(lines), n_columns), np.nan)
+    bad = []
+    for i, line in enumerate(lines):
+        try:
+            table[i] = _parse_numbers(_split(line, delim), decimal_comma)
+        except ValueError:
+            bad.append(i)
+    return table, bad
 
 
 def _header_from_comments(comments, delim, n_columns):
