@@ -11,7 +11,7 @@ from scipy import optimize, signal
 
 __all__ = [
     "resolvable_field", "relative_oscillation", "uniform_inverse_field",
-    "dominant_frequency", "minima_positions", "envelope",
+    "dominant_frequency", "minima_positions", "envelope", "conductivity_like", "log_clipped",
 ]
 
 
@@ -21,6 +21,34 @@ def resolvable_field(frequency, field_step, points_per_period=6.0):
     The period in B at field B is B^2 / B_F, so B >= sqrt(points * B_F * dB).
     """
     return float(np.sqrt(points_per_period * frequency * field_step))
+
+
+def conductivity_like(inverse_field, rxx, rxy=None, geometry_factor=1.0):
+    """A signal proportional to sigma_xx, whose minima are symmetric about each gap.
+
+    With the Hall signal, sigma_xx = rho_xx / (rho_xx^2 + rho_xy^2) with
+    rho_xx = ``geometry_factor`` R_xx (width/length) and rho_xy = R_xy; without
+    it, R_xx (1/B)^2, since in the quantum Hall regime sigma_xx ~ rho_xx / rho_xy^2
+    and rho_xy is proportional to B.  The peaks of sigma_xx are symmetric about
+    each Landau level while those of rho_xx lean towards lower filling, which
+    would pull the minima centres and the oscillation phase (common practice:
+    locate minima in the conductivity).
+    """
+    rxx = np.asarray(rxx, dtype=float)
+    if rxy is None:
+        return rxx * np.asarray(inverse_field, dtype=float) ** 2
+    rho = geometry_factor * rxx
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return rho / (rho**2 + np.asarray(rxy, dtype=float) ** 2)
+
+
+def log_clipped(values, floor=1e-3):
+    """log of ``values`` clipped at ``floor`` times their maximum (quantum Hall zeros, noise)."""
+    values = np.asarray(values, dtype=float)
+    top = np.nanmax(values) if values.size else np.nan
+    if not top > 0:
+        return np.full(values.shape, np.nan)
+    return np.log(np.maximum(np.nan_to_num(values, nan=floor * top), floor * top))
 
 
 def relative_oscillation(inverse_field, values, degree=3):
@@ -124,9 +152,8 @@ def minima_positions(x, delta, frequency, *, min_prominence=0.0):
     """Centres (in 1/B) of the oscillation minima of ``delta``, a trace on ascending ``x``.
 
     Minima are found at least half a period apart; each centre is the midpoint
-    of the two points where the trace crosses half the depth of the well
-    (between the minimum and the lower of its neighbouring maxima), by linear
-    interpolation.  This is exact for a sinusoid and for flat-bottomed quantum
+    of the two points where the trace crosses half way between the minimum and
+    the neighbouring maximum on that side, by linear interpolation.  This is exact for a sinusoid and for flat-bottomed quantum
     Hall minima alike, where the lowest sample is not the centre.
 
     Returns ``(centres, depths)``; minima whose half-depth crossing is not
@@ -148,15 +175,18 @@ def minima_positions(x, delta, frequency, *, min_prominence=0.0):
         depth = min(d[lo], d[hi]) - d[i]
         if depth <= 0:
             continue
-        level = d[i] + 0.5 * depth
-        seg_l = np.flatnonzero(d[lo:i + 1] >= level)
-        seg_r = np.flatnonzero(d[i:hi + 1] >= level)
+        # Each flank is cut at half its own height, so that neighbouring maxima of
+        # different heights (growing amplitude, unequal levels) do not shift the centre.
+        level_l = d[i] + 0.5 * (d[lo] - d[i])
+        level_r = d[i] + 0.5 * (d[hi] - d[i])
+        seg_l = np.flatnonzero(d[lo:i + 1] >= level_l)
+        seg_r = np.flatnonzero(d[i:hi + 1] >= level_r)
         if seg_l.size == 0 or seg_r.size == 0:
             continue
         a = lo + seg_l[-1]          # last point above the level left of the minimum
         b = i + seg_r[0]            # first point above the level right of the minimum
-        x_left = np.interp(level, [d[a + 1], d[a]], [x[a + 1], x[a]])
-        x_right = np.interp(level, [d[b - 1], d[b]], [x[b - 1], x[b]])
+        x_left = np.interp(level_l, [d[a + 1], d[a]], [x[a + 1], x[a]])
+        x_right = np.interp(level_r, [d[b - 1], d[b]], [x[b - 1], x[b]])
         centres.append(0.5 * (x_left + x_right))
         depths.append(depth)
     return np.asarray(centres), np.asarray(depths)
@@ -181,3 +211,4 @@ def envelope(x, delta, frequency, samples_per_period=32):
     averaged = np.convolve(z, kernel, mode="valid")
     centres = xs[: averaged.size] + 0.5 * (samples_per_period - 1) * step
     return centres, 2.0 * np.abs(averaged)
+

@@ -50,8 +50,13 @@ __all__ = [
     "compare_calibrations", "run_crosschecks",
 ]
 
-#: Systematic error of an oscillation frequency, in units of its Rayleigh resolution.
-FREQUENCY_SYSTEMATIC = 0.003
+#: Relative systematic error of an oscillation frequency, common to all gate voltages.  When
+#: the waveform sharpens into the quantum Hall regime along a trace, the phase of its
+#: fundamental drifts and the spectral peak moves: on the project's simulated fans with
+#: 0.056 T field steps (minima at exact fillings) by 0.01-0.06 % for graphene mono- and
+#: bilayers and up to 0.3 % for a GaAs 2DEG with few resolved periods.  Window changes do
+#: not reveal it, so it is added to the lever arm's error.
+FREQUENCY_SYSTEMATIC = 3e-3
 
 #: Relative deviation from n = alpha (V - V0) tolerated at the edge of the neutrality gap.
 HALL_LINEARITY = 1e-3
@@ -403,13 +408,67 @@ def hall_calibration(fan_map, *, field_window=None, geometry_factor=None,
 
 # --- oscillation frequency -------------------------------------------------------------
 
+def _spectral_peak(b, s, lo, hi, **kw):
+    """Hann-windowed spectral peak of the oscillations between fields lo and hi.
+
+    ``s`` is the conductivity-like trace (:func:`_conductivity`); the transform
+    is taken of its logarithm, clipped (:func:`_log_window`): in the quantum
+    Hall regime this keeps the sharp minima from filling the spectrum with
+    harmonics and shifting the fundamental, and at low field it is the plain
+    relative oscillation.
+    """
+    x, v = osc.uniform_inverse_field(b, _log_window(b, s, lo, hi), lo, hi)
+    if not np.all(np.isfinite(v)):
+        return float("nan"), float("nan"), float("nan"), 0.0
+    return osc.dominant_frequency(x, osc.relative_oscillation(x, v), min_cycles=1.5, **kw)
+
+
+def _log_window(b, s, lo, hi):
+    """log of sigma B^2 (flat at high field, where sigma_xx ~ 1/B^2), clipped within [lo, hi].
+
+    The clip (1e-3 of the window's maximum) keeps quantum Hall zeros and noise from
+    dominating; it is taken inside the analysed window so that the large
+    low-field conductivity outside it does not clip everything.
+    """
+    inside = (b >= lo) & (b <= hi)
+    out = np.full(b.shape, np.nan)
+    out[inside] = osc.log_clipped(s[inside] * b[inside] ** 2)
+    return out
+
+
+def _conductivity(fan_map, geometry_factor=None):
+    """``(fields, gates, sigma-like[field, gate])`` of a fan map (see conductivity_like)."""
+    fields, gates, rxx = _traces(fan_map, RXX)
+    rxy = None
+    if RXY in fan_map:
+        rxy = _traces(fan_map, RXY, odd=True)[2]
+        if not np.isfinite(rxy).any():
+            rxy = None
+    with np.errstate(divide="ignore"):
+        x = np.where(fields > 0, 1.0 / fields, np.nan)[:, None]
+    return fields, gates, osc.conductivity_like(
+        x, rxx, rxy, 1.0 if geometry_factor is None else geometry_factor)
+
+
 def _gate_frequency(fields, trace, field_step, *, field_range=None, points_per_period=6.0,
-                    min_cycles=3.0, min_significance=6.0):
+                    min_cycles=3.0, min_significance=6.0, near=None):
     """Oscillation frequency (T) of one R_xx(B) trace, or None with a reason.
 
-    Pass 1 looks at ever wider high-field windows until one holds
-    ``min_cycles`` oscillations; pass 2 extends the window down to the lowest
-    field where that frequency is still sampled ``points_per_period`` times.
+    Pass 1 looks at ever wider high-field windows until the Hann-windowed
+    spectrum shows ``min_cycles`` oscillations; pass 2 extends the window down
+    to the lowest field where that frequency is still sampled
+    ``points_per_period`` times.  With ``near`` (T) the peak is searched
+    within 25 % of that frequency instead (used to put every gate voltage on
+    the same harmonic).
+
+    The standard error combines, in quadrature, the statistical error of a
+    spectral peak (Cramer-Rao bound for a sinusoid in white noise: 0.39
+    resolutions over the peak's significance), the spread of the peak when
+    the window is shortened at either end (leakage of harmonics, mirror image
+    and background move with the window), and the difference from the slope
+    of the minima positions in 1/B (a waveform whose shape changes along the
+    trace drifts the phase of its fundamental, which the minima do not
+    follow).  So the error is measured on the data, not assumed.
     """
     ok = np.isfinite(trace) & (fields > 0)
     b, r = fields[ok], trace[ok]
@@ -419,47 +478,67 @@ def _gate_frequency(fields, trace, field_step, *, field_range=None, points_per_p
     if b.size < 8:
         return None, "fewer than 8 field values"
     hi, floor = b.max(), b.min()
-    guess = None
-    lo = hi
-    while lo > floor:
-        lo = max(lo * 0.7, floor)
+    if near is not None:
+        lo = max(floor, osc.resolvable_field(near, field_step, points_per_period))
         if np.sum(b >= lo) < 8:
-            continue
-        x, v = osc.uniform_inverse_field(b, r, lo, hi)
-        f, amplitude, res, sig = osc.dominant_frequency(
-            x, osc.relative_oscillation(x, v), min_cycles=1.5,
-            max_frequency=lo**2 / (points_per_period * field_step))
-        if np.isfinite(f) and sig >= min_significance and f >= min_cycles * res:
-            guess = f
-            break
-    if guess is None:
-        return None, f"fewer than {min_cycles:g} resolved oscillations"
-    f = guess
-    for _ in range(3):                  # widen the window as long as the frequency allows
-        new_lo = max(floor, osc.resolvable_field(f, field_step, points_per_period))
-        if new_lo >= lo:
-            break
-        lo = new_lo
-        x, v = osc.uniform_inverse_field(b, r, lo, hi)
-        f, amplitude, res, sig = osc.dominant_frequency(
-            x, osc.relative_oscillation(x, v), min_cycles=1.5,
-            max_frequency=max(lo**2 / (points_per_period * field_step), 1.5 * f))
-        if not np.isfinite(f):
-            break
+            return None, "fewer than 8 field values"
+        f, amplitude, res, sig = _spectral_peak(b, r, lo, hi, max_frequency=1.25 * near)
+        if np.isfinite(f) and abs(f - near) > 0.25 * near:
+            f = float("nan")
+    else:
+        guess = None
+        lo = hi
+        while lo > floor:
+            lo = max(lo * 0.7, floor)
+            if np.sum(b >= lo) < 8:
+                continue
+            f, amplitude, res, sig = _spectral_peak(
+                b, r, lo, hi, max_frequency=lo**2 / (points_per_period * field_step))
+            if np.isfinite(f) and sig >= min_significance and f >= min_cycles * res:
+                guess = f
+                break
+        if guess is None:
+            return None, f"fewer than {min_cycles:g} resolved oscillations"
+        for _ in range(3):              # widen the window as long as the frequency allows
+            new_lo = max(floor, osc.resolvable_field(f, field_step, points_per_period))
+            if new_lo >= lo:
+                break
+            lo = new_lo
+            f, amplitude, res, sig = _spectral_peak(
+                b, r, lo, hi, max_frequency=max(lo**2 / (points_per_period * field_step), 1.5 * f))
+            if not np.isfinite(f):
+                break
     # Below 1e-6 of the background an "oscillation" is rounding error, not a measurement.
     if not np.isfinite(f) or sig < min_significance or f < min_cycles * res or amplitude < 1e-6:
         return None, "no significant oscillation"
-    return {"frequency": f, "amplitude": amplitude, "resolution": res, "significance": sig,
+    shifted = []
+    for a, z in ((lo * 1.15, hi), (lo, max(hi / 1.4, lo * 1.5))):
+        if f * (1 / a - 1 / z) >= min_cycles and np.sum((b >= a) & (b <= z)) >= 8:
+            g = _spectral_peak(b, r, a, z, max_frequency=1.5 * f)[0]
+            if np.isfinite(g) and abs(g - f) < 0.5 * f:
+                shifted.append(g)
+    spread = float(np.std([f, *shifted], ddof=1)) if shifted else float(res)
+    minima = _minima_fit(b, r, f, lo, hi, field_step)
+    from_minima = float("nan")
+    if minima is not None and minima[2].sum() >= 4:
+        from_minima = 1.0 / minima[0].slope
+        if abs(from_minima - f) > 0.25 * f:       # minima on another harmonic: no comparison
+            from_minima = float("nan")
+    drift = abs(from_minima - f) if np.isfinite(from_minima) else 0.0
+    stderr = math.sqrt((0.39 * res / sig) ** 2 + spread**2 + drift**2)
+    return {"frequency": f, "frequency_stderr": stderr, "minima_frequency": from_minima,
+            "amplitude": amplitude, "resolution": res, "significance": sig,
             "field_min": lo, "field_max": hi, "cycles": f * (1 / lo - 1 / hi)}, None
 
 
 def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
-                            points_per_period=6.0, min_cycles=3.0):
+                            points_per_period=6.0, min_cycles=3.0, geometry_factor=None):
     """Lever arm from the Shubnikov-de Haas frequency at every gate voltage.
 
-    At each gate voltage R_xx(B) is divided by its smooth background, resampled
-    uniformly in 1/B, Hann-windowed and Fourier transformed (zero-padded, peak
-    refined); the frequency B_F gives |n| = g e B_F / h (Onsager).  Then
+    At each gate voltage the conductivity-like trace (sigma_xx from R_xx and
+    R_xy, or R_xx/B^2 without a Hall signal) is taken on a log scale, divided
+    by its smooth background, resampled uniformly in 1/B, Hann-windowed and
+    Fourier transformed (zero-padded, peak refined); the frequency B_F gives |n| = g e B_F / h (Onsager).  Then
     |n| = |alpha (V_g - V0)| is fitted through the sign change, so that
     electrons and holes both count.
 
@@ -470,6 +549,8 @@ def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
     field_range : (float, float), optional
         Field range (T) to use; by default from the lowest field where the
         oscillations are sampled ``points_per_period`` times to the highest.
+    geometry_factor : float, optional
+        Width / length of the Hall bar (rho_xx = R_xx W/L) for sigma_xx; 1 by default.
 
     Returns
     -------
@@ -479,52 +560,86 @@ def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
         ``frequency`` (T, NaN where none was resolved), ``density`` (signed,
         m^-2), ``used``; ``warnings``.
     """
-    fields, gates, rxx = _traces(fan_map, RXX)
+    fields, gates, sigma = _conductivity(fan_map, geometry_factor)
     step = _field_step(fields[fields > 0])
     freq = np.full(gates.size, np.nan)
     resolution = np.full(gates.size, np.nan)
     freq_err = np.full(gates.size, np.nan)
     reasons = {}
     for j in range(gates.size):
-        found, why = _gate_frequency(fields, rxx[:, j], step, field_range=field_range,
+        found, why = _gate_frequency(fields, sigma[:, j], step, field_range=field_range,
                                      points_per_period=points_per_period, min_cycles=min_cycles)
         if found is None:
             reasons[why] = reasons.get(why, 0) + 1
             continue
         freq[j], resolution[j] = found["frequency"], found["resolution"]
-        # Statistical error of a spectral peak (Cramer-Rao bound for one sinusoid in white
-        # noise, in terms of the peak's significance), plus a systematic floor: on exact
-        # Lifshitz-Kosevich traces the windowed peak of a damped trace on a polynomial
-        # background is off by up to ~0.003 of the resolution (measured; see the tests).
-        freq_err[j] = found["resolution"] * math.hypot(0.39 / found["significance"],
-                                                       FREQUENCY_SYSTEMATIC)
+        # The systematic part is also a per-gate error: how much of it is common is unknown.
+        freq_err[j] = math.hypot(found["frequency_stderr"], FREQUENCY_SYSTEMATIC * found["frequency"])
     warnings = [f"oscillations: no frequency at {count} gate voltages ({why})"
                 for why, count in reasons.items()]
     fit, signs, used = _fit_v_clipped(gates, freq, freq_err)
+    # The strongest peak may be another harmonic at some gate voltages (split or sharp minima):
+    # put every gate on the harmonic that the fan as a whole follows.
+    if np.isfinite(fit.slope):
+        expected = np.abs(fit.intercept + fit.slope * gates)
+        ratio = freq / expected
+        order = np.round(np.where(ratio >= 1, ratio, 1 / ratio))
+        off = np.isfinite(ratio) & (order >= 2) & (np.abs(np.where(
+            ratio >= 1, ratio, 1 / ratio) - order) < 0.15 * order)
+        for j in np.flatnonzero(off):
+            found, _ = _gate_frequency(fields, sigma[:, j], step, field_range=field_range,
+                                       points_per_period=points_per_period,
+                                       min_cycles=min_cycles, near=expected[j])
+            freq[j], freq_err[j] = ((found["frequency"], math.hypot(
+                found["frequency_stderr"], FREQUENCY_SYSTEMATIC * found["frequency"]))
+                if found else (np.nan, np.nan))
+        if off.any():
+            warnings.append(f"oscillations: at {int(off.sum())} gate voltages the strongest peak "
+                            "was another harmonic; the peak of the fan's own frequency was used")
+            fit, signs, used = _fit_v_clipped(gates, freq, freq_err)
     if fit.points < 3 or not np.isfinite(fit.slope):
         raise InputError("oscillations: fewer than three gate voltages show resolved "
                          "Shubnikov-de Haas oscillations; give a field range or a map with "
                          "finer field steps")
+    # Correlated over gate voltages, so not averaged down by the fit: see FREQUENCY_SYSTEMATIC.
+    # A common frequency offset cancels between the branches of an ambipolar fan but moves
+    # the extrapolated V0 of a one-sided one by offset / slope.
+    slope_stderr = math.hypot(fit.slope_stderr, FREQUENCY_SYSTEMATIC * fit.slope)
+    v0_stderr = fit.root_stderr
+    if np.unique(signs[used]).size == 1:
+        v0_stderr = math.hypot(v0_stderr, FREQUENCY_SYSTEMATIC * np.nanmean(freq[used])
+                               / fit.slope)
     result = {
         "frequency_per_volt": fit.slope,
-        "frequency_per_volt_stderr": fit.slope_stderr,
+        "frequency_per_volt_stderr": slope_stderr,
+        "frequency_per_volt_statistical_stderr": fit.slope_stderr,
+        "frequency_intercept": fit.intercept,
+        "signs": signs,
         "zero_density_voltage": fit.root,
-        "zero_density_voltage_stderr": fit.root_stderr,
-        "degeneracy": degeneracy,
+        "zero_density_voltage_stderr": v0_stderr,
         "gate": gates, "frequency": freq, "frequency_stderr": freq_err,
         "frequency_resolution": resolution, "used": used,
         "warnings": warnings,
     }
-    if degeneracy:
-        result["density_per_volt"] = float(onsager_density(fit.slope, degeneracy))
-        result["density_per_volt_stderr"] = float(onsager_density(fit.slope_stderr, degeneracy))
-        result["density"] = signs * onsager_density(freq, degeneracy)
-    else:
-        result["density_per_volt"] = result["density_per_volt_stderr"] = float("nan")
-        result["density"] = np.full(gates.size, np.nan)
+    _apply_degeneracy(result, degeneracy)
+    if not degeneracy:
         warnings.append("oscillations: level degeneracy unknown, so no density; "
                         "give a material or a degeneracy")
     return result
+
+
+def _apply_degeneracy(result, degeneracy):
+    """Densities n = g e B_F / h of an :func:`oscillation_calibration` result, in place."""
+    result["degeneracy"] = degeneracy
+    if degeneracy:
+        result["density_per_volt"] = float(onsager_density(result["frequency_per_volt"],
+                                                           degeneracy))
+        result["density_per_volt_stderr"] = float(onsager_density(
+            result["frequency_per_volt_stderr"], degeneracy))
+        result["density"] = result["signs"] * onsager_density(result["frequency"], degeneracy)
+    else:
+        result["density_per_volt"] = result["density_per_volt_stderr"] = float("nan")
+        result["density"] = np.full(result["frequency"].shape, np.nan)
 
 
 def _fit_v_clipped(x, y, sigma, clip=4.0, rounds=3):
@@ -560,9 +675,51 @@ def _assign_indices(centres, frequency, tolerance):
     return np.where(on_grid, np.round(centres * frequency - centre), -1).astype(int), on_grid
 
 
+def _minima_fit(b, r, frequency, lo, hi, field_step, *, min_relative_depth=0.05,
+                grid_tolerance=0.2):
+    """Straight-line fit 1/B_N = (N_rel + c) / B_F of the minima of one trace, or None.
+
+    ``r`` is the conductivity-like trace (:func:`_conductivity`), whose wells are
+    symmetric; minima are located in its clipped logarithm, put on a grid of period 1/frequency (off-grid ones, such as split states, are
+    dropped) and fitted with weights from the field step, twice (the second
+    time on the grid of the fitted frequency).  Returns ``(fit, index,
+    on_grid, centres)`` with relative integer indices.
+    """
+    x, v = osc.uniform_inverse_field(b, _log_window(b, r, lo, hi), lo, hi)
+    centres, depths = osc.minima_positions(x, osc.relative_oscillation(x, v), frequency)
+    if depths.size:
+        centres = centres[depths >= min_relative_depth * depths.max()]
+    fit = None
+    index, on_grid = np.empty(0, dtype=int), np.zeros(centres.size, dtype=bool)
+    for _ in range(2):
+        if centres.size < 3:
+            break
+        index, on_grid = _assign_indices(centres, frequency, grid_tolerance)
+        if on_grid.sum() < 3:
+            break
+        # Field-step error of a minimum in 1/B grows as dB / B^2 (coarser x-steps at low field);
+        # minima pulled by a neighbouring split state as it sets in are clipped.
+        fit, kept = fit_line_clipped(index[on_grid], centres[on_grid],
+                                     field_step * centres[on_grid] ** 2)
+        if not fit.slope > 0:
+            return None
+        on_grid[np.flatnonzero(on_grid)[~kept]] = False
+        frequency = 1.0 / fit.slope
+    if fit is None:
+        return None
+    return fit, index, on_grid, centres
+
+
 def landau_index_plot(fan_map, gate, *, frequency=None, field_range=None, points_per_period=8.0,
-                      min_relative_depth=0.05, grid_tolerance=0.2, degeneracy=None):
+                      min_relative_depth=0.05, grid_tolerance=0.2, degeneracy=None,
+                      geometry_factor=None):
     """Index plot N versus 1/B_N of the R_xx minima at one gate voltage.
+
+    Minima are located in sigma_xx (from R_xx and R_xy, with
+    ``geometry_factor`` = width/length; R_xx/B^2 without a Hall signal), whose
+    wells are symmetric about each gap (those of R_xx lean towards lower
+    filling), on a log scale; each minimum's centre is the midpoint of its
+    half-height flanks.
 
     Parameters
     ----------
@@ -584,42 +741,28 @@ def landau_index_plot(fan_map, gate, *, frequency=None, field_range=None, points
         ``off_grid_inverse_field`` of left-out minima; ``filling`` g (N + gamma)
         when ``degeneracy`` is given; ``warnings``.
     """
-    fields, gates, rxx = _traces(fan_map, RXX)
+    fields, gates, sigma = _conductivity(fan_map, geometry_factor)
     j = int(np.argmin(np.abs(gates - gate)))
     step = _field_step(fields[fields > 0])
     warnings = []
     if frequency is None:
-        found, why = _gate_frequency(fields, rxx[:, j], step, field_range=field_range)
+        found, why = _gate_frequency(fields, sigma[:, j], step, field_range=field_range)
         if found is None:
             raise InputError(f"index plot at {gates[j]:g} V: {why}")
         frequency = found["frequency"]
-    ok = np.isfinite(rxx[:, j]) & (fields > 0)
-    b, r = fields[ok], rxx[ok, j]
+    ok = np.isfinite(sigma[:, j]) & (fields > 0)
+    b, r = fields[ok], sigma[ok, j]
     lo, hi = b.min(), b.max()
     if field_range is not None:
         lo, hi = max(lo, field_range[0]), min(hi, field_range[1])
     lo = max(lo, osc.resolvable_field(frequency, step, points_per_period))
-    x, v = osc.uniform_inverse_field(b, r, lo, hi)
-    delta = osc.relative_oscillation(x, v)
-    centres, depths = osc.minima_positions(x, delta, frequency)
-    if depths.size:
-        keep = depths >= min_relative_depth * depths.max()
-        centres = centres[keep]
-    index = np.empty(0, dtype=int)
-    on_grid = np.zeros(centres.size, dtype=bool)
-    fit = None
-    for _ in range(2):                  # second round with the fitted frequency
-        if centres.size < 3:
-            break
-        index, on_grid = _assign_indices(centres, frequency, grid_tolerance)
-        if on_grid.sum() < 3:
-            break
-        # Field-step error of a minimum in 1/B grows as dB / B^2 (coarser x-steps at low field).
-        fit = fit_line(index[on_grid], centres[on_grid], step * centres[on_grid] ** 2)
-        frequency = 1.0 / fit.slope
-    if fit is None or on_grid.sum() < 4:
-        raise InputError(f"index plot at {gates[j]:g} V: only {int(on_grid.sum())} minima on one "
+    found = _minima_fit(b, r, frequency, lo, hi, step, min_relative_depth=min_relative_depth,
+                        grid_tolerance=grid_tolerance)
+    if found is None or found[2].sum() < 4:
+        count = 0 if found is None else int(found[2].sum())
+        raise InputError(f"index plot at {gates[j]:g} V: only {count} minima on one "
                          "grid; at least four are needed")
+    fit, index, on_grid, centres = found
     ratio = fit.intercept / fit.slope            # = N_offset + gamma
     ratio_var = (fit.intercept_stderr**2 / fit.slope**2
                  + fit.intercept**2 * fit.slope_stderr**2 / fit.slope**4
@@ -697,7 +840,8 @@ def _fit_thermal(temps, amps, field):
 
 
 def effective_mass_from_series(fan_maps, *, gate=None, temperatures=None, field_range=None,
-                               max_relative_amplitude=0.3, fields=6, points_per_period=8.0):
+                               max_relative_amplitude=0.3, min_filled_levels=5.0, fields=6,
+                               points_per_period=8.0):
     """Effective mass from the Lifshitz-Kosevich thermal damping of a temperature series.
 
     At one gate voltage the amplitude A(B, T) of the fundamental oscillation of
@@ -715,7 +859,10 @@ def effective_mass_from_series(fan_maps, *, gate=None, temperatures=None, field_
     temperatures : sequence of float, optional
         Temperatures (K); by default each map's ``temperature`` attribute.
     gate : float, optional
-        Gate voltage (V); by default the one with the highest oscillation frequency.
+        Gate voltage (V); by default the lowest-density one (of up to 15 tried) that
+        allows the fit.
+    min_filled_levels : float
+        Fields are used only where B_F / B (the number of filled levels) is at least this.
     fields : int
         Number of fields at which the mass is fitted.
 
@@ -738,22 +885,39 @@ def effective_mass_from_series(fan_maps, *, gate=None, temperatures=None, field_
     order = np.argsort(temps)
     temps, fan_maps = temps[order], [fan_maps[i] for i in order]
     coldest = fan_maps[0]
-    b_all, gates, rxx = _traces(coldest, RXX)
+    b_all, gates, sigma = _conductivity(coldest)
     step = _field_step(b_all[b_all > 0])
     if gate is None:
-        best = None
+        # Low densities first: their oscillations are resolved down to lower fields, where
+        # they are weak enough for the Lifshitz-Kosevich form.
+        candidates = []
         for j in np.linspace(0, gates.size - 1, min(gates.size, 15)).astype(int):
-            found, _ = _gate_frequency(b_all, rxx[:, j], step, field_range=field_range)
-            if found and (best is None or found["frequency"] > best[1]["frequency"]):
-                best = (gates[j], found)
-        if best is None:
+            found, _ = _gate_frequency(b_all, sigma[:, j], step, field_range=field_range)
+            if found:
+                candidates.append((found["frequency"], gates[j], found))
+        if not candidates:
             raise InputError("no gate voltage of the coldest map shows resolved oscillations")
-        gate, found = best
-    else:
-        j = int(np.argmin(np.abs(gates - gate)))
-        found, why = _gate_frequency(b_all, rxx[:, j], step, field_range=field_range)
-        if found is None:
-            raise InputError(f"effective mass at {gate:g} V: {why}")
+        problems = []
+        for _, vg, found in sorted(candidates, key=lambda c: c[0]):
+            try:
+                return _mass_at_gate(fan_maps, temps, vg, found, step, b_all, field_range,
+                                     max_relative_amplitude, fields, points_per_period,
+                                     min_filled_levels)
+            except InputError as exc:
+                problems.append(f"{vg:g} V: {exc}")
+        raise InputError("no gate voltage allows an effective-mass fit (" + "; ".join(problems[:3])
+                         + "); measure to lower fields or with finer field steps")
+    j = int(np.argmin(np.abs(gates - gate)))
+    found, why = _gate_frequency(b_all, sigma[:, j], step, field_range=field_range)
+    if found is None:
+        raise InputError(f"effective mass at {gate:g} V: {why}")
+    return _mass_at_gate(fan_maps, temps, gates[j], found, step, b_all, field_range,
+                         max_relative_amplitude, fields, points_per_period, min_filled_levels)
+
+
+def _mass_at_gate(fan_maps, temps, gate, found, step, b_all, field_range,
+                  max_relative_amplitude, fields, points_per_period, min_filled_levels):
+    """The effective-mass and Dingle fits of :func:`effective_mass_from_series` at one gate."""
     frequency = found["frequency"]
     lo = max(b_all[b_all > 0].min(), osc.resolvable_field(frequency, step, points_per_period))
     hi = b_all.max()
@@ -764,10 +928,13 @@ def effective_mass_from_series(fan_maps, *, gate=None, temperatures=None, field_
     if x_cold.size == 0:
         raise InputError("the field range holds less than one oscillation period")
     warnings = []
-    weak = (a_cold <= max_relative_amplitude) & (a_cold >= 0.02 * max_relative_amplitude)
+    # The Lifshitz-Kosevich form needs many filled levels (B_F / B of them) and weak oscillations.
+    weak = ((a_cold <= max_relative_amplitude) & (a_cold >= 0.02 * max_relative_amplitude)
+            & (x_cold * frequency >= min_filled_levels))
     if weak.sum() < 2:
         raise InputError("no weak-oscillation field range (relative amplitude below "
-                         f"{max_relative_amplitude:g}) at the lowest temperature")
+                         f"{max_relative_amplitude:g} with at least {min_filled_levels:g} filled "
+                         "levels) at the lowest temperature")
     x_weak = x_cold[weak]
     # Sample points one period apart so that the fitted amplitudes are independent.
     spacing = max((x_weak.max() - x_weak.min()) / max(fields - 1, 1), 1.0 / frequency)
@@ -784,13 +951,11 @@ def effective_mass_from_series(fan_maps, *, gate=None, temperatures=None, field_
     if masses.size == 0:
         raise InputError("the thermal damping fit failed at every field")
     if np.all(np.isfinite(errors)) and np.all(errors > 0):
-        w = 1.0 / errors**2
-        mean = float(np.sum(w * masses) / np.sum(w))
-        internal = float(np.sqrt(1.0 / np.sum(w)))
+        mean, stderr = _weighted_mean(masses, errors)
     else:
-        mean, internal = float(np.mean(masses)), float("nan")
-    external = float(np.std(masses, ddof=1) / np.sqrt(masses.size)) if masses.size > 1 else np.nan
-    stderr = float(np.nanmax([internal, external]))
+        mean = float(np.mean(masses))
+        stderr = float(np.std(masses, ddof=1) / np.sqrt(masses.size)) if masses.size > 1 \
+            else float("nan")
     if temps.max() * LK_COEFFICIENT * mean / max(used_fields) < 1.0:
         warnings.append("effective mass: the damping at the highest temperature is weak "
                         "(X < 1); warmer maps would pin the mass better")
@@ -843,10 +1008,10 @@ def quantum_lifetime(fan_map, *, gate, effective_mass, temperature=None, effecti
     """
     if temperature is None:
         temperature = _temperature_of(fan_map)
-    fields, gates, rxx = _traces(fan_map, RXX)
+    fields, gates, sigma = _conductivity(fan_map)
     j = int(np.argmin(np.abs(gates - gate)))
     step = _field_step(fields[fields > 0])
-    found, why = _gate_frequency(fields, rxx[:, j], step, field_range=field_range)
+    found, why = _gate_frequency(fields, sigma[:, j], step, field_range=field_range)
     if found is None:
         raise InputError(f"quantum lifetime at {gate:g} V: {why}")
     lo = max(fields[fields > 0].min(),
@@ -935,9 +1100,9 @@ def _expected_intercept(fan_result, material):
     return 0.5 if phase % 2 == 1 else 0.0
 
 
-def _pick_index_gates(gates, frequency, count):
+def _pick_index_gates(gates, frequency, used, count):
     """Up to ``count`` gate voltages spread over those with resolved oscillations."""
-    valid = np.flatnonzero(np.isfinite(frequency))
+    valid = np.flatnonzero(np.isfinite(frequency) & used)
     if valid.size == 0:
         return []
     strong = valid[frequency[valid] >= np.quantile(frequency[valid], 0.3)]
@@ -1056,7 +1221,7 @@ def run_crosschecks(fan_map, fan_result=None, *, degeneracy=None, material="auto
     g, g_from = _resolve_degeneracy(degeneracy, fan_result, material)
     oscill = None
     try:
-        oscill = oscillation_calibration(fan_map, degeneracy=g,
+        oscill = oscillation_calibration(fan_map, degeneracy=g, geometry_factor=geometry_factor,
                                          field_range=oscillation_field_range)
     except InputError as exc:
         warnings.append(f"oscillation frequency not measured: {exc}")
@@ -1064,11 +1229,16 @@ def run_crosschecks(fan_map, fan_result=None, *, degeneracy=None, material="auto
         ratio = _degeneracy_ratio(hall, oscill)
         if ratio is not None:
             out["degeneracy_from_hall_ratio"] = ratio
-        if g is None and ratio is not None and abs(ratio - round(ratio)) < 0.2 and round(ratio) >= 1:
-            g, g_from = int(round(ratio)), "ratio of Hall to oscillation density"
-            oscill = oscillation_calibration(fan_map, degeneracy=g,
-                                             field_range=oscillation_field_range)
-        elif g is not None and ratio is not None and abs(ratio - g) > 0.25 * g:
+        whole = int(round(ratio)) if ratio is not None else 0
+        if whole >= 1 and abs(ratio - whole) < 0.1 and whole != g:
+            if g is not None:
+                warnings.append(
+                    f"oscillations: the Hall density is {ratio:.3f} times e B_F/h, so the "
+                    f"oscillations resolve {whole}-fold levels, not the {g}-fold ones of the "
+                    f"{g_from} (spin or valley split where they are sampled); g = {whole} used")
+            g, g_from = whole, "ratio of Hall to oscillation density"
+            _apply_degeneracy(oscill, g)
+        elif g is not None and ratio is not None and abs(ratio - g) > 0.1 * g:
             warnings.append(f"oscillations: the Hall density is {ratio:.2f} times e B_F/h, "
                             f"not the degeneracy {g} used")
         warnings += [w for w in oscill.pop("warnings")
@@ -1086,15 +1256,19 @@ def run_crosschecks(fan_map, fan_result=None, *, degeneracy=None, material="auto
 
     if oscill is not None:
         if index_gates is None:
-            index_gates = _pick_index_gates(oscill["gate"], oscill["frequency"], index_gate_count)
+            index_gates = _pick_index_gates(oscill["gate"], oscill["frequency"], oscill["used"],
+                                            index_gate_count)
         plots = []
         for vg in index_gates:
             j = int(np.argmin(np.abs(oscill["gate"] - vg)))
-            f = oscill["frequency"][j]
+            # The fan's own frequency where this gate's peak was rejected as an outlier.
+            f = oscill["frequency"][j] if oscill["used"][j] else abs(
+                oscill["frequency_intercept"] + oscill["frequency_per_volt"] * oscill["gate"][j])
             try:
                 plots.append(landau_index_plot(
                     fan_map, vg, frequency=f if np.isfinite(f) else None,
-                    field_range=oscillation_field_range, degeneracy=g))
+                    field_range=oscillation_field_range, degeneracy=g,
+                    geometry_factor=geometry_factor))
             except InputError as exc:
                 warnings.append(f"index plot not drawn: {exc}")
         for p in plots:

@@ -1,5 +1,8 @@
 """``fanmap check MAP``: independent cross-checks of the fan calibration."""
 
+import argparse
+import json
+
 import numpy as np
 
 from .._atomic import write_text_atomic
@@ -17,7 +20,9 @@ def _pair(text):
     try:
         lo, hi = (float(v) for v in text.split(":"))
     except ValueError:
-        raise InputError(f"expected LOW:HIGH in tesla, got {text!r}") from None
+        raise argparse.ArgumentTypeError(f"expected LOW:HIGH in tesla, got {text!r}") from None
+    if not (0 <= lo < hi):
+        raise argparse.ArgumentTypeError(f"expected 0 <= LOW < HIGH in tesla, got {text!r}")
     return lo, hi
 
 
@@ -120,8 +125,6 @@ def run(args):
         temperature_series=series or None, temperatures=temperatures)
     checks["warnings"] = notes + checks["warnings"]
     if args.json:
-        import json
-
         write_text_atomic(args.json, json.dumps(to_jsonable(checks), indent=2, allow_nan=False) + "\n")
     print(summary(checks))
     print("")
