@@ -10,8 +10,9 @@ points unless stated) fitted with ``fanmap.fanfit.fit_fan``.  Scored per map:
   not (no R_xy, no preset, nothing else), the fit must say "ambiguous" and list the true
   (g, alpha) among its candidates;
 - fractional states: inserted (``truth_fractional_fillings``), *observable* (inside the
-  gate window over at least 1 T above the simulator's onset field), found, missed, false
-  (a reported fraction not inserted);
+  gate window and at least 4 gate points from every other inserted state over at least
+  1 T above the simulator's onset field), found, missed, false (a reported fraction not
+  inserted);
 - time of the fit alone;
 - side by side, the plain baseline of ``_baseline.py`` (row minima matched by hand to the
   material's known sequence).
@@ -87,17 +88,24 @@ def _fractions(text):
     return {Fraction(t.strip()) for t in text.split(",") if t.strip()}
 
 
-def observable_fractions(fan_map):
-    """Inserted fractions whose line lies in the gate window over >= 1 T above its onset."""
+def observable_fractions(fan_map, min_spacing_px=4.0):
+    """Inserted fractions that a measurement can show: the line lies in the gate window and
+    at least ``min_spacing_px`` gate points from every other inserted state over >= 1 T
+    above its onset field."""
     a = fan_map.attrs
     onsets = np.atleast_1d(a.get("truth_fractional_onset_fields", []))
     gate = fan_map["gate"].values
+    step = float(np.median(np.abs(np.diff(gate))))
     b = np.abs(fan_map["field"].values)
     k = a["truth_density_per_volt"] * 4.135667696e-15
+    others = [float(f) for f in _ordered(a)]
+    for key in ("truth_main_fillings", "truth_broken_symmetry_fillings"):
+        others += [float(x) for x in np.atleast_1d(a.get(key, []))]
     seen = set()
     for f, onset in zip(_ordered(a), onsets):
         v = a["truth_zero_density_voltage"] + float(f) * b / k
-        inside = (b >= onset) & (v > gate.min()) & (v < gate.max())
+        gap = min(abs(float(f) - o) for o in others if o != float(f)) * b / k
+        inside = (b >= onset) & (v > gate.min()) & (v < gate.max()) & (gap >= min_spacing_px * step)
         if inside.any() and np.ptp(b[inside]) >= 1.0:
             seen.add(f)
     return seen

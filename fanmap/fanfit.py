@@ -150,22 +150,45 @@ def _assign(minima, origin_rows, slopes, tolerance, resolved):
     return np.where(ok, nearest, -1)
 
 
-def _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance, resolved):
+def _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance, resolved,
+                       band):
     """Whether each line holds clearly more minima than chance would put near it.
 
-    Chance: in each row where the line is inside the window and resolved, the row's
-    minima density times the width of the acceptance band.  A line needs at least
-    twice the chance count, four standard deviations above it, and eight points.
+    Counted are the line's minima within ``band`` (V) of it.  Chance: in each row where
+    the line is inside the window and resolved, the row's minima density times the width
+    of that band.  A line needs at least twice the chance count, four standard deviations
+    above it, and eight points.
     """
     n_rows = field.size
     density = np.bincount(minima.row, minlength=n_rows) / gate.size
     step = float(np.median(np.diff(gate)))
     position = origin_rows[:, None] + slopes[None, :] * np.abs(field)[:, None]
     inside = (position > gate[0]) & (position < gate[-1]) & resolved
-    expected = np.sum(inside * density[:, None] * 2 * tolerance / step, axis=0)
-    observed = np.bincount(line[line >= 0], minlength=slopes.size)
+    width = 2 * np.minimum(band, tolerance) / step
+    expected = np.sum(inside * density[:, None] * width, axis=0)
+    assigned = line >= 0
+    offset = np.abs(minima.gate - origin_rows[minima.row]
+                    - slopes[np.maximum(line, 0)] * minima.field)
+    close = assigned & (offset < np.minimum(band, tolerance[minima.row, np.maximum(line, 0)]))
+    observed = np.bincount(line[close], minlength=slopes.size)
     return (observed >= _MIN_LINE_POINTS) & (observed >= 2 * expected) \
         & (observed >= expected + 4 * np.sqrt(expected))
+
+
+def _minima_signal(rxx, rxy):
+    """sigma_xx-like signal R_xx / (R_xx^2 + R_xy^2) in rows where R_xy dominates.
+
+    Where rho_xy >> rho_xx (quantum Hall regime) the minima of sigma_xx sit at the
+    fillings themselves, while those of R_xx = sigma_xx / sigma_xy^2 are pulled towards the
+    side where sigma_xy is larger.  At low field (rho_xx >> rho_xy) sigma_xx ~ 1/rho_xx would
+    turn minima into maxima, so those rows keep R_xx.  The unknown geometry factor of
+    R_xx drops out where it matters (R_xx << R_xy).
+    """
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sigma = rxx / (rxx**2 + rxy**2)
+    hall_rows = np.nanmedian(np.abs(rxy), axis=1) > 3 * np.nanmedian(np.abs(rxx), axis=1)
+    # Scale sigma rows to ohm-like magnitudes so that the log floor behaves the same way.
+    return np.where(hall_rows[:, None], sigma * np.nanmedian(np.abs(rxy)) ** 2, rxx)
 
 
 def _link_by_direction(minima, direction, tolerance):
@@ -233,7 +256,8 @@ def _origin_of_rows(origin, names, n_rows, direction):
 # --- the fit ------------------------------------------------------------------------
 
 def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
-            min_prominence=4.0, quantum_capacitance="auto", superlattice=True):
+            min_prominence=4.0, quantum_capacitance="auto", superlattice=True,
+            use_conductivity=False):
     """Calibrate a gate from a Landau fan map.
 
     Parameters
@@ -256,8 +280,11 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         Detection threshold of row minima in units of the row noise.
     quantum_capacitance : "auto", True or False
         Try the Dirac quantum-capacitance term ("auto": for monolayer graphene, or a
-        Berry phase pi with a known scale); it is reported only when it improves the
-        fit significantly (F-test, p < 0.001).
+        Berry phase pi with a known scale); it is used only when it improves the
+        fit significantly (F-test p < 0.001 and 20 % less residual).
+    use_conductivity : bool
+        Find the minima of R_xx / (R_xx^2 + R_xy^2) (sigma_xx up to a factor) where R_xy
+        is present and dominates, instead of R_xx.
     superlattice : bool
         For "moire-graphene" and "auto", hand the result to
         :func:`fanmap.superlattice.analyse_superlattice` when that module exists.
@@ -281,7 +308,7 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     span = float(gate[-1] - gate[0])
     warnings = []
 
-    logr, valid = log_signal(r)
+    logr, valid = log_signal(_minima_signal(r, rxy) if use_conductivity else r)
     valley = valley_strength(logr)
     minima = find_row_minima(logr, valid, gate, field, min_prominence=min_prominence,
                              valley=valley)
@@ -311,7 +338,7 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
                          bin_width, min_votes)
     # Lines of (nearly) zero slope stay at V0 at every field: the neutrality ridge, not a state.
     slopes = slopes[np.abs(slopes) * b_abs.max() > 3 * step]
-    slopes = _merge_close(slopes, 3 * step / b_abs.max())
+    slopes = _merge_close(slopes, 4 * step / b_abs.max())  # closer lines are unresolved
     if slopes.size < 2:
         raise NoFanError("fewer than two lines through a common origin were found; the map "
                          "shows no Landau fan (or too few resolved states to fit one)")
@@ -325,7 +352,7 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
         line = _assign(minima, origin_rows, slopes, tolerance, resolved)
         keep = _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance,
-                                  resolved)
+                                  resolved, band=max(1.5 * step, 3 * residual_scale))
         if keep.sum() < 2:
             raise NoFanError("fewer than two fan lines have enough resolved minima to fit; "
                              "the map shows no usable Landau fan")
@@ -357,7 +384,8 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         X = np.column_stack([np.ones(pts.size), minima.field[pts]])
         beta, cov, *_ = _wls(X, y, minima.weight[pts])
         own_offset[j], own_err[j] = beta[0], np.sqrt(cov[0, 0])
-    through_origin = (np.abs(own_offset) < 3 * step) | (np.abs(own_offset) < 5 * own_err)
+    # (8 points: a line bent by the window edge stays; satellites miss by far more)
+    through_origin = (np.abs(own_offset) < 8 * step) | (np.abs(own_offset) < 5 * own_err)
     if (~through_origin).any():
         satellite = np.flatnonzero(~through_origin)
         if through_origin.sum() < 2:
@@ -596,7 +624,11 @@ def _fixed_fit(minima, line, fillings, n_rows, dir_rows, use_hysteresis, bootstr
 
 
 def _quantum_capacitance(minima, line, fillings, final, mode, material, berry_phase):
-    """Fit V = V0 + e n / C + v_F hbar sqrt(pi |n|) sgn(n) / e and test it against the linear fit."""
+    """Fit V = V0 + e n / C + v_F hbar sqrt(pi |n|) sgn(n) / e and test it against the linear fit.
+
+    Kept when an F-test gives p < 0.001, the term removes at least 20 % of the residual
+    sum of squares and v_F is a plausible graphene velocity (3e5 ... 3e6 m/s).
+    """
     dirac = material == "graphene-monolayer" or (material == "auto" and berry_phase == 1)
     if mode is False or (mode == "auto" and not dirac):
         return None
@@ -615,10 +647,14 @@ def _quantum_capacitance(minima, line, fillings, final, mode, material, berry_ph
     capacitance = 1 / inv_c
     # Graphene Fermi velocities lie near 1e6 m/s (Novoselov et al. 2005, from memory); a
     # "significant" velocity far outside 3e5 ... 3e6 m/s is some other distortion.
-    significant = bool(p_value < 1e-3 and 3e5 < v_f < 3e6 and err[-1] < 0.3 * abs(v_f))
+    # With thousands of points any small distortion passes an F-test; the term must also
+    # explain a fifth of the residual variance.
+    significant = bool(p_value < 1e-3 and 3e5 < v_f < 3e6 and err[-1] < 0.3 * abs(v_f)
+                       and rss1 < 0.8 * final["rss"])
     return {"significant": significant, "fermi_velocity": float(v_f),
             "fermi_velocity_stderr": float(err[-1]), "f_statistic": float(f_value),
-            "p_value": p_value, "capacitance_per_area": float(capacitance),
+            "p_value": p_value, "residual_ratio": rss1 / final["rss"],
+            "capacitance_per_area": float(capacitance),
             "density_per_volt": float(capacitance / ELEMENTARY_CHARGE),
             "density_per_volt_stderr": float(err[-2] / inv_c**2 / ELEMENTARY_CHARGE),
             "zero_density_voltage": float(beta[0]),
@@ -639,6 +675,26 @@ def _add_superlattice(fan_map, result, preset):
                                    material=result.material)
     result.superlattice = finding.superlattice
     result.states.extend(finding.satellites)
+    summary = finding.superlattice or {}
+    if summary.get("main_fit_origin_band_filling") and summary.get("joint_fit"):
+        # The strongest fan started at a band filling s != 0: the joint fit of all fans
+        # holds the calibration of the device's own zero-density voltage.
+        s = summary["main_fit_origin_band_filling"]
+        result.warnings.append(
+            f"the strongest fan starts at band filling s = {s:+d}, not at neutrality; alpha "
+            "and V0 are those of the joint fit of all fans (superlattice analysis)")
+        result.extras["strongest_fan"] = {
+            "band_filling": s, "zero_density_voltage": result.zero_density_voltage,
+            "density_per_volt": result.density_per_volt}
+        alpha, v0 = summary["density_per_volt"], summary["zero_density_voltage"]
+        result.density_per_volt, result.zero_density_voltage = alpha, v0
+        result.density_per_volt_stderr = summary["density_per_volt_stderr"]
+        result.zero_density_voltage_stderr = summary["zero_density_voltage_stderr"]
+        result.density_per_volt_bootstrap_stderr = float("nan")
+        result.zero_density_voltage_bootstrap_stderr = float("nan")
+        result.capacitance_per_area = ELEMENTARY_CHARGE * alpha
+        result.capacitance_per_area_stderr = ELEMENTARY_CHARGE * result.density_per_volt_stderr
+        result.density_offset = -alpha * v0
     result.extras["superlattice_notes"] = list(finding.notes)
     if finding.seen or result.material == "moire-graphene":
         result.warnings.extend(finding.notes)

@@ -84,7 +84,7 @@ def _absolute_noise(r):
 
 
 def log_signal(resistance, despike=True):
-    """Base-10 log of |R| row by row, spikes removed and NaN gaps bridged.
+    """Base-10 log of R row by row, spikes removed and NaN gaps bridged.
 
     Parameters
     ----------
@@ -111,7 +111,9 @@ def log_signal(resistance, despike=True):
     >>> np.round(logr, 2).tolist(), valid.tolist()
     ([[1.0, 0.0, 0.5, 1.0, 2.0]], [[True, True, False, True, True]])
     """
-    r = np.abs(np.asarray(resistance, dtype=float))
+    # Signed: contact mixing can push R_xx below zero on a plateau; such points join the
+    # floor (a flat minimum) instead of making new minima where |R| crosses zero.
+    r = np.asarray(resistance, dtype=float)
     valid = np.isfinite(r)
     # A floor keeps exact zeros (perfect QH minima) finite and flat: five times the absolute
     # noise, so that noise on a zero-resistance plateau makes no extra minima, and at least
