@@ -124,6 +124,8 @@ def open_map(path, *, signal=None, hall=None, gate=None, field=None, top_gate=No
     ctx = _Context(str(path), options)
     try:
         raw, notes, fmt = read_raw(path, format=format, lazy=lazy)
+        if lazy and fmt != "netcdf":
+            notes.append("lazy opening applies to netCDF only; this file was read into memory")
         ctx.note(f"format: {fmt}" + (f" ({'; '.join(notes)})" if notes else ""))
         ds = _interpret(raw, ctx)
     except InputError as exc:
@@ -864,6 +866,15 @@ def _validate(ds, kind, ctx):
     total = int(np.prod(rxx.shape))
     if n_finite < total:
         ctx.note(f"{total - n_finite} of {total} points of R_xx are NaN")
+        if kind == S.FAN and ds.sizes[S.FIELD] > 1:
+            last = np.asarray(rxx[-1].values, dtype=float)
+            nan_last = ~np.isfinite(last)
+            direction = int(ds[S.SWEEP_DIRECTION].values[-1]) if S.SWEEP_DIRECTION in ds.coords else 1
+            tail = nan_last[::-1] if direction > 0 else nan_last
+            run = int(np.argmin(tail)) if not tail.all() else tail.size
+            if run >= max(3, 0.1 * last.size):
+                ctx.note(f"the last sweep stops early: its final {run} of {last.size} points are NaN "
+                         "(an interrupted sweep)")
     if kind == S.FAN:
         if ds.sizes[S.FIELD] < 2:
             raise ctx.error(f"only one field value ({float(ds[S.FIELD][0]):.4g} T): a single sweep is "

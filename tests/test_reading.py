@@ -806,3 +806,14 @@ def test_constant_columns_are_not_axes(tmp_path):
     assert read.attrs["map_kind"] == "gates"
     assert float(read.field) == pytest.approx(0.5)
     np.testing.assert_allclose(read.rxx.values[0], [1 + vt * vt - 1.0 for vt in (-2.0, -1.0, 0.0, 1.0)])
+
+
+def test_interrupted_last_sweep_in_a_gridded_file(tmp_path):
+    from fanmap.simulate import simulate_fan
+    fan = simulate_fan(gate=np.linspace(-30, 30, 61), field=np.linspace(1, 9, 6), seed=1, interrupted=0.6)
+    path = tmp_path / "interrupted.nc"
+    fan.to_netcdf(path)
+    read = open_map(path)
+    assert "the last sweep stops early: its final 24 of 61 points" in read.attrs["recognised"]
+    assert "lazy opening applies to netCDF only" in open_map(write_long(tmp_path / "x.csv", hand_fan()),
+                                                             lazy=True).attrs["recognised"]
