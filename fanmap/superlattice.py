@@ -226,7 +226,7 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
     lines = _find_offset_lines(points, free, scale, gate, fields, max_slope,
                                min(onsets) if onsets else 0.0)
     lattice = _fit_lattice(lines, scale, flavours, max_band_filling, notes,
-                           one_sided_main=_one_sided(main_states))
+                           main_origin_hint=_main_origin_hint(main_states, flavours))
 
     rng = np.random.default_rng(seed)
     superlattice = None
@@ -355,17 +355,23 @@ def _unassigned_points(points, main_states, scale):
     return free
 
 
-def _one_sided(main_states):
-    """+1 or -1 when the main fan's lines run (almost) all to one side, else 0.
+def _main_origin_hint(main_states, flavours):
+    """Band filling at which the main fan itself seems to start (0: neutrality).
 
-    A fan from charge neutrality is ambipolar; one that runs from a band edge
-    into a remote band has most of its lines on the outward side.
+    A fan from neutrality of a graphene moire is ambipolar with levels of the
+    full flavour degeneracy.  One whose lines run (almost) all to one side
+    starts at a band edge, s = +-flavours, and runs into the remote band; one
+    whose slopes step by flavours/2 starts at half filling (twofold levels).
     """
-    signs = [np.sign(_filling_number(st.filling) or 0) for _, st in main_states
-             if st.kind in _MAIN_KINDS]
-    up, down = signs.count(1), signs.count(-1)
-    if max(up, down) >= 2 and 3 * min(up, down) <= max(up, down):
-        return 1 if up > down else -1
+    fillings = [_filling_number(st.filling) for _, st in main_states if st.kind == "integer"]
+    fillings = [int(round(f)) for f in fillings if f and float(f).is_integer()]
+    up = sum(f > 0 for f in fillings)
+    down = sum(f < 0 for f in fillings)
+    if max(up, down) >= 2 and 4 * min(up, down) <= max(up, down):
+        return flavours if up > down else -flavours
+    if len(fillings) >= 3 and flavours % 2 == 0 and \
+            np.gcd.reduce(np.abs(fillings)) == flavours // 2:
+        return flavours // 2
     return 0
 
 
@@ -548,19 +554,19 @@ def _intercept_tol(line, scale):
     return max(3 * line["intercept_density_stderr"], 1.5 * abs(scale.alpha) * scale.gate_step)
 
 
-def _fit_lattice(lines, scale, flavours, max_band_filling, notes, one_sided_main=0):
+def _fit_lattice(lines, scale, flavours, max_band_filling, notes, main_origin_hint=0):
     """Choose n0 (and s per family) so that every intercept is a multiple s n0.
 
     The real-number GCD is ambiguous by integer factors; the outermost
     family is taken to be full filling, |s| = flavours, as is usual in
-    graphene moires (band insulators give the strongest satellites).  When
-    no lattice through the main fan origin has that property but the
-    families (with the main fan) form the symmetric pattern -flavours ...
-    +flavours about another point, the main fan fit took a satellite family
-    for its origin, and neutrality is that point.  Only when both fail does
-    the plain GCD (largest n0 that fits) decide.  A main fan whose lines all
-    have one sign (``one_sided_main``) is itself a hint that its origin is a
-    band edge rather than neutrality, which is ambipolar.
+    graphene moires (band insulators give the strongest satellites), unless
+    its Landau levels are twofold (half filling, full filling outside the
+    window).  The main fan fit may also have taken a satellite family for
+    its origin: ``main_origin_hint`` is the band filling the main fan itself
+    suggests (0: neutrality; +-flavours: a one-sided fan running from a band
+    edge; +-flavours/2: twofold levels).  Then neutrality is the centre of
+    the symmetric pattern of families.  Only when all this fails does the
+    plain GCD (largest n0 that fits) decide.
     """
     if len(lines) < 2:
         return None
@@ -571,7 +577,8 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes, one_sided_main
     hypotheses = [(0.0, outer / k, k) for k in range(1, max_band_filling + 1)]
     low, high = min(densities), max(densities)
     if abs(0.5 * (low + high)) > floor:
-        hypotheses.append((0.5 * (low + high), (high - low) / (2 * flavours), None))
+        for edge in sorted({flavours, max(flavours // 2, 1)}, reverse=True):
+            hypotheses.append((0.5 * (low + high), (high - low) / (2 * edge), None))
 
     evaluated = []
     for origin, n0, k in hypotheses:
@@ -602,34 +609,36 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes, one_sided_main
     if best <= 0:
         return None
     pool = [h for h in through_origin if h["explained"] >= 0.999 * best]
-    chosen = next((h for h in pool if h["k"] == flavours), None)
-    if chosen is not None and _outer_family_is_half_filling(chosen, families, lines, flavours):
-        half = next((h for h in pool if h["k"] == flavours // 2), None)
-        if half is not None:
-            chosen = half
-            notes.append(f"the outermost satellite family has {flavours // 2}-fold Landau levels, "
-                         f"as at half filling, so it is taken as |s| = {flavours // 2}; full "
-                         "filling lies outside the gate window")
-    shifted = [h for h in evaluated if h["origin"] != 0.0 and h["full_sides"] == 2
-               and h["explained"] >= 0.999 * best]
-    if one_sided_main and chosen is not None:
-        # keep the shifted lattice only if the main fan's lines run outwards from a band edge
-        shifted = [h for h in shifted if abs(h["main_s"]) == flavours
-                   and np.sign(h["main_s"]) == one_sided_main]
-        if shifted:
-            chosen = None
+    shifted = [h for h in evaluated if h["origin"] != 0.0 and h["explained"] >= 0.999 * best]
+
+    chosen = None
+    if main_origin_hint:
+        hinted = [h for h in shifted if h["main_s"] == main_origin_hint
+                  or (abs(main_origin_hint) < flavours and abs(h["main_s"]) == abs(main_origin_hint))]
+        if hinted:
+            chosen = hinted[0]
     if chosen is None:
-        if shifted:
-            chosen = shifted[0]
-            notes.append(f"the main fan fit's origin is the s = {chosen['main_s']:+d} satellite "
-                         "family, not charge neutrality: the band fillings are counted from the "
-                         "centre of the symmetric pattern of families, and the superlattice "
-                         "zero_density_voltage is the neutrality point")
-        else:
-            chosen = pool[0]
-            notes.append(f"the outermost satellite family is not at |s| = {flavours} (full "
-                         "filling); n0 taken as the largest cell density that makes every "
-                         "intercept a multiple of it: check against the zero-field peaks")
+        chosen = next((h for h in pool if h["k"] == flavours), None)
+        if chosen is not None and _outer_family_is_half_filling(chosen, families, lines, flavours):
+            half = next((h for h in pool if h["k"] == flavours // 2), None)
+            if half is not None:
+                chosen = half
+                notes.append(f"the outermost satellite family has {flavours // 2}-fold Landau "
+                             f"levels, as at half filling, so it is taken as |s| = "
+                             f"{flavours // 2}; full filling lies outside the gate window")
+    if chosen is None:
+        full = [h for h in shifted if h["full_sides"] == 2]
+        chosen = full[0] if full else None
+    if chosen is None:
+        chosen = pool[0]
+        notes.append(f"the outermost satellite family is not at |s| = {flavours} (full "
+                     "filling); n0 taken as the largest cell density that makes every "
+                     "intercept a multiple of it: check against the zero-field peaks")
+    if chosen["main_s"]:
+        notes.append(f"the main fan fit's origin is the s = {chosen['main_s']:+d} satellite "
+                     "family, not charge neutrality: the band fillings are counted from the "
+                     "centre of the symmetric pattern of families, and the superlattice "
+                     "zero_density_voltage is the neutrality point")
     assigned, neutral = {}, []
     for fam, s in zip(families, chosen["fills"]):
         if s is None:
