@@ -210,3 +210,35 @@ def test_command_writes_json_and_fails_cleanly(tmp_path, capsys):
     out2 = tmp_path / "none.json"
     assert main(["fit", str(bad), "--json", str(out2)]) == 2
     assert not out2.exists()
+
+
+# --- simulator maps with known truth (small grids keep these fast) -------------------------
+
+SIMULATED = {
+    "graphene-monolayer": dict(gate=np.linspace(-40, 40, 250), field=np.linspace(0.5, 14, 100)),
+    "graphene-bilayer": dict(gate=np.linspace(-6, 6, 250), field=np.linspace(0.5, 12, 100)),
+    "2deg": dict(gate=np.linspace(-0.6, 0.3, 250), field=np.linspace(0.3, 14, 120)),
+}
+
+
+@pytest.mark.parametrize("material", sorted(SIMULATED))
+def test_simulated_fans_of_every_material(material):
+    from fractions import Fraction
+
+    from fanmap.simulate import simulate_fan
+
+    ds = simulate_fan(material, seed=5, **SIMULATED[material])
+    truth = ds.attrs
+    r = fit_fan(ds, bootstrap=50)
+    assert r.density_per_volt == pytest.approx(truth["truth_density_per_volt"], rel=0.01)
+    span = float(np.ptp(ds["gate"].values))
+    assert abs(r.zero_density_voltage - truth["truth_zero_density_voltage"]) < 0.003 * span
+    assert (r.degeneracy, r.berry_phase) == (truth["truth_degeneracy"], truth["truth_berry_phase"])
+    assert r.scale_from == "hall"
+    inserted = {Fraction(f) for f in str(truth.get("truth_fractional_fillings") or "").split(",") if f}
+    found = {Fraction(s.filling) for s in r.states if s.kind == "fractional"}
+    assert found <= inserted                    # no false fractional state
+    if inserted:
+        assert len(found) >= len(inserted) // 2
+    main = {int(s.filling) for s in r.states if s.kind == "integer"}
+    assert main <= set(int(v) for v in truth["truth_main_fillings"]) | {-int(v) for v in truth["truth_main_fillings"]}
