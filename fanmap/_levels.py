@@ -140,15 +140,25 @@ class SpectrumModel:
             out = np.where(inside, dos, out)
         return out
 
-    def reference_dos(self, energy):
-        """Zero-field density of states that normalises the scattering rate (J^-1 m^-2).
+    def reference_dos(self, density):
+        """Zero-field density of states (J^-1 m^-2) at the Fermi energy of ``density``.
 
-        In monolayer graphene the density of states vanishes at neutrality; puddles
-        smear it over ``puddle_energy``, so the reference is D_0(sqrt(E^2 + E_p^2)).
+        It normalises the scattering rate.  Taken at the zero-field Fermi energy of
+        the pixel's density (not at its chemical potential), it is smooth across a
+        Landau gap and so does not move the minima.  In monolayer graphene puddles
+        smear the vanishing density of states at neutrality over ``puddle_energy``.
         """
+        density = np.asarray(density, dtype=float)
         if self.kind == "monolayer":
-            return self.smooth_dos(np.hypot(energy, self.puddle_energy))
-        return self.smooth_dos(energy)
+            fermi = ph.dirac_fermi_energy(density, self.fermi_velocity)
+            return self.smooth_dos(np.hypot(fermi, self.puddle_energy))
+        if self.kind == "moire":
+            out = np.zeros_like(density)
+            for e_lo, e_hi, dos, n_lo in self._moire_pieces():
+                out = np.where(np.abs(density) >= n_lo, dos, out)
+            return out
+        return np.full(density.shape, self.smooth_dos(np.inf) if self.kind == "bilayer"
+                       else self.smooth_dos(1.0))
 
     def smooth_density(self, energy):
         """Zero-temperature density (m^-2, from neutrality) with all states below ``energy`` filled."""

@@ -27,12 +27,14 @@ _SPACING_PER_WIDTH = 0.5
 
 @dataclass
 class RowTable:
-    """Tables of one row: energy grid (J), density n(E) (m^-2), Hall density and scattering ratio."""
+    """Tables of one row on an energy grid (J): density n(E) and Hall density (m^-2), and the
+    thermally smeared extended-state density of states (J^-1 m^-2, None at B = 0)."""
 
     energy: np.ndarray
     density: np.ndarray
     hall_density: np.ndarray
-    scattering: np.ndarray     # thermally smeared extended-state DOS / smooth DOS
+    extended: np.ndarray | None
+    reference_dos: object      # callable: zero-field DOS at a density
 
 
 def _kernel(omega, width, shape):
@@ -89,7 +91,6 @@ def row_table(model, field, density_range, temperature, *, shape="gaussian",
     step = energy[1] - energy[0]
 
     smooth = model.smooth_dos(energy) * step
-    reference_weights = model.reference_dos(energy) * step
     if levels is None:
         weights_on_grid = smooth
         base = model.smooth_density(energy[0])
@@ -117,7 +118,6 @@ def row_table(model, field, density_range, temperature, *, shape="gaussian",
     stairs_spectrum = np.fft.rfft(stairs - ramp)
     ramp = ramp[pad:pad + points]
     spectrum = np.fft.rfft(weights_on_grid, size)
-    reference_spectrum = np.fft.rfft(reference_weights, size)
 
     def convolve(transform, width, shift=0):
         out = np.fft.irfft(transform * _kernel(omega, width, shape) * thermal, size)
@@ -126,14 +126,10 @@ def row_table(model, field, density_range, temperature, *, shape="gaussian",
     density = convolve(stairs_spectrum, widths[0], pad) + ramp
     hall_density = convolve(stairs_spectrum, widths[2], pad) + ramp
     extended = convolve(spectrum, widths[1])
-    reference = convolve(reference_spectrum, widths[0])
     # a vanishing floor of localised states keeps n(E) strictly increasing
     density = density + 1e-9 * max(np.ptp(density), 1.0) * np.linspace(0, 1, points)
-    eps = 1e-3 * reference.max()
-    scattering = (np.clip(extended, 0, None) + eps) / (np.clip(reference, 0, None) + eps)
-    if levels is None:
-        scattering = np.ones_like(energy)
-    return RowTable(energy, density, hall_density, scattering)
+    extended = None if levels is None else np.clip(extended, 0, None) / step
+    return RowTable(energy, density, hall_density, extended, model.reference_dos)
 
 
 def _energy_scale(model, density):
@@ -145,8 +141,16 @@ def _energy_scale(model, density):
 
 
 def evaluate(table, density):
-    """Chemical potential (J), Hall density (m^-2) and scattering ratio at each ``density``."""
+    """Chemical potential (J), Hall density (m^-2) and scattering ratio at each ``density``.
+
+    The scattering ratio is the extended-state density of states at mu over the
+    zero-field one at the same density (1 at B = 0).
+    """
     mu = np.interp(density, table.density, table.energy)
     hall = np.interp(mu, table.energy, table.hall_density)
-    scattering = np.interp(mu, table.energy, table.scattering)
+    if table.extended is None:
+        return mu, hall, np.ones_like(mu)
+    reference = table.reference_dos(density)
+    floor = 1e-3 * np.max(reference)
+    scattering = (np.interp(mu, table.energy, table.extended) + floor) / (reference + floor)
     return mu, hall, scattering
