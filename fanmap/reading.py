@@ -261,8 +261,6 @@ def _assign_axes(raw, info, candidates, ctx):
     for name, role, reason in guesses:
         if role in roles_taken:
             continue
-        if role == R.GATE and (R.GATE in roles_taken):
-            continue
         chosen[role] = name
         roles_taken.add(role)
         ctx.reasons[name] = f"by {reason}"
@@ -568,7 +566,7 @@ def _interpret(raw, ctx):
     scalars = {}
     for d in extra:
         for name in raw.variables:
-            if raw[name].dims == (d,):
+            if raw[name].dims == (d,) and np.issubdtype(raw[name].dtype, np.number):
                 scalars[name] = float(raw[name].values[0])
     if len(core) == 2:
         ds = _from_grid(raw, info, core, extra, names, ctx)
@@ -598,9 +596,6 @@ def _from_grid(raw, info, dims, extra, names, ctx):
     order = (S.FIELD, S.GATE) if kind == S.FAN else (S.BOTTOM_GATE, S.TOP_GATE)
     if two_d:
         return _grid_with_2d_axis(raw, axes, dim_of, two_d, kind, order, names, extra, ctx)
-    sig = raw[names[S.RXX]]
-    for d in extra:
-        sig = sig.isel({d: 0})
     rename = {dim_of[a]: a for a in order}
     values = {}
     for role, name in names.items():
@@ -731,10 +726,13 @@ def _assemble(sweeps, raw, axes, kind, slow_axis, fast_axis, names, ctx):
         ctx.note(f"gaps: {report['gap_points']} grid point(s) inside gaps left NaN (not interpolated)")
     if report["duplicates_averaged"]:
         ctx.note(f"{report['duplicates_averaged']} repeated point(s) within a sweep averaged")
-    for index, covered in report["short_sweeps"]:
+    short = report["short_sweeps"]
+    for index, covered in short[:5]:
         where = "last " if index == len(sweeps) - 1 else ""
         ctx.note(f"{where}sweep {index} (at {axes[slow_axis]!r} = {sweeps[index]['slow']:.6g}) is ragged: "
                  f"covers {100 * covered:.0f}% of the grid, NaN-padded")
+    if len(short) > 5:
+        ctx.note(f"... and {len(short) - 5} more ragged sweeps")
     directions = np.array([s["direction"] for s in sweeps])
     order = (S.FIELD, S.GATE) if kind == S.FAN else (S.BOTTOM_GATE, S.TOP_GATE)
     data = {r: rows[r] for r in roles}
@@ -749,7 +747,7 @@ def _assemble(sweeps, raw, axes, kind, slow_axis, fast_axis, names, ctx):
         data = {r: (order, v) for r, v in data.items()}
     else:
         # slow axis is a gate (field sweeps at fixed gate, or a gate map): one column/row per slow value
-        uniq, inverse = np.unique(slow, return_inverse=True)
+        uniq, inverse = _levels(slow)
         if uniq.size != slow.size:
             ctx.note(f"{slow.size - uniq.size} repeated sweep(s) at the same {slow_axis.replace('_', ' ')} "
                      "averaged")
@@ -773,6 +771,29 @@ def _assemble(sweeps, raw, axes, kind, slow_axis, fast_axis, names, ctx):
     ds = xr.Dataset({r: (order, v, a) for r, (v, a) in converted.items()}, coords=coords)
     ds.attrs[S.MAP_KIND] = kind
     return ds
+
+
+def _levels(values):
+    """Distinct set points of a slow axis read back with jitter: ``(levels, index of each value)``.
+
+    Values closer than a tenth of the typical step between set points are one level (their mean).
+
+    Examples
+    --------
+    >>> levels, index = _levels(np.array([1.0, 2.0, 1.0001, 3.0, 1.9999]))
+    >>> levels.round(4).tolist(), index.tolist()
+    ([1.0, 2.0, 3.0], [0, 1, 0, 2, 1])
+    """
+    order = np.argsort(values, kind="stable")
+    ordered = values[order]
+    steps = np.diff(ordered)
+    big = steps[steps > 1e-3 * float(np.ptp(ordered))]  # read-back jitter is far below this
+    tol = 0.1 * float(np.median(big)) if big.size else 0.0
+    group = np.concatenate([[0], np.cumsum(steps > tol)])
+    levels = np.array([ordered[group == g].mean() for g in range(group[-1] + 1)])
+    index = np.empty(values.size, dtype=int)
+    index[order] = group
+    return levels, index
 
 
 def _scalar_field(raw, scalars, info, ctx):
