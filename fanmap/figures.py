@@ -24,6 +24,7 @@ Examples
 """
 
 import math
+import warnings
 from fractions import Fraction
 
 import numpy as np
@@ -133,6 +134,13 @@ def _signal(fan_map, signal=None):
     return da.sortby(S.FIELD).sortby(S.GATE)
 
 
+def _row_medians(values):
+    """Median of the positive values of each row (NaN for a row without any), as a column."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)     # rows that are all NaN
+        return np.nanmedian(np.where(values > 0, values, np.nan), axis=1, keepdims=True)
+
+
 def colour_scale(values, scale="auto", *, rows_are_field=True):
     """Choose how to colour a resistance map: ``(array, norm, description)``.
 
@@ -163,8 +171,7 @@ def colour_scale(values, scale="auto", *, rows_are_field=True):
     if scale == "auto":
         scale = "linear"
         if mostly_positive and positive.size:
-            with np.errstate(all="ignore"):
-                medians = np.nanmedian(np.where(values > 0, values, np.nan), axis=1)
+            medians = _row_medians(values)[:, 0]
             medians = medians[np.isfinite(medians) & (medians > 0)]
             lo, hi = np.percentile(positive, [1, 99])
             if rows_are_field and medians.size > 1 and medians.max() / medians.min() > 10:
@@ -174,9 +181,7 @@ def colour_scale(values, scale="auto", *, rows_are_field=True):
     if scale not in ("linear", "log", "row"):
         raise InputError(f"unknown colour scale {scale!r}; use auto, linear, log or row")
     if scale == "row":
-        with np.errstate(all="ignore"):
-            medians = np.nanmedian(np.where(values > 0, values, np.nan), axis=1, keepdims=True)
-            values = values / medians
+        values = values / _row_medians(values)
         finite = values[np.isfinite(values) & (values > 0)]
         scale_used = "row"
     else:

@@ -184,7 +184,8 @@ h1 { font-size: 1.5rem; margin-bottom: 0.2rem; } h2 { font-size: 1.2rem; margin-
      border-bottom: 1px solid #ccc; padding-bottom: 0.2rem; }
 table { border-collapse: collapse; margin: 0.6rem 0; font-size: 0.92rem; }
 th, td { border: 1px solid #d0d0d0; padding: 0.25rem 0.55rem; text-align: left; vertical-align: top; }
-th { background: #f1f1ee; } td.num { text-align: right; font-variant-numeric: tabular-nums; }
+th { background: #f1f1ee; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 figure { margin: 1rem 0; } figure img { max-width: 100%; height: auto; border: 1px solid #ddd; }
 figcaption { font-size: 0.9rem; color: #444; }
 .meta { color: #555; font-size: 0.9rem; } .warn { background: #fff6df; border-left: 4px solid #c98a00;

@@ -73,3 +73,32 @@ def synthetic_result(alpha=ALPHA, v0=V0, with_points=True, extra_states=True, se
                      "hall_density_per_volt_stderr": 0.01 * alpha},
         source="demo-device-A.nc", version="0.1.0", ridge_points=ridge,
     )
+
+
+def synthetic_gate_map(field=0.0, top_capacitance=1.2e-3, bottom_capacitance=0.8e-3,
+                       top_offset=0.1, bottom_offset=-0.2):
+    """A dual-gate R_xx map with a neutrality ridge along n = 0 (capacitances in F m^-2)."""
+    from scipy import constants
+
+    top = np.linspace(-4, 4, 41)
+    bottom = np.linspace(-6, 6, 61)
+    n = (top_capacitance * (top[None, :] - top_offset)
+         + bottom_capacitance * (bottom[:, None] - bottom_offset)) / constants.e
+    rxx = 200 + 5000 * np.exp(-0.5 * (n / 2e15) ** 2)
+    return xr.Dataset(
+        {S.RXX: ((S.BOTTOM_GATE, S.TOP_GATE), rxx, {"units": "ohm", "long_name": "R"})},
+        coords={S.TOP_GATE: (S.TOP_GATE, top, {"units": "V", "long_name": "top gate voltage"}),
+                S.BOTTOM_GATE: (S.BOTTOM_GATE, bottom,
+                                {"units": "V", "long_name": "bottom gate voltage"}),
+                S.FIELD: ((), field, {"units": "T"})},
+        attrs={S.MAP_KIND: S.GATES, "source": f"demo-dual-gate-{field:g}T.nc"})
+
+
+def synthetic_gate_result():
+    """The GateResult that matches :func:`synthetic_gate_map`."""
+    from fanmap.results import GateResult
+
+    return GateResult(1.2e-3, 1e-5, 0.8e-3, 1e-5, 1.5, 0.01, 0.1, 0.01, -0.2, 0.01, 4,
+                      "neutrality ridge", "D = (Ct(Vt-Vt0) - Cb(Vb-Vb0))/2",
+                      extras={"ridge_points": {"top_gate": [0.1, 1.0],
+                                               "bottom_gate": [-0.2, -1.7]}})

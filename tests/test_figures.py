@@ -10,12 +10,13 @@ from matplotlib.colors import LogNorm
 from matplotlib.text import Text
 from scipy import constants
 
-from _fan_data import ALPHA, V0, synthetic_fan, synthetic_result
+from _fan_data import (ALPHA, V0, synthetic_fan, synthetic_gate_map, synthetic_gate_result,
+                        synthetic_result)
 from fanmap import _schema as S
 from fanmap import _style
 from fanmap import figures as F
 from fanmap.errors import InputError
-from fanmap.results import GateResult, State
+from fanmap.results import State
 
 matplotlib.use("Agg")
 
@@ -186,24 +187,11 @@ def test_fan_figure_rejects_a_map_without_rxx():
 
 
 def _gate_map(field=0.0):
-    top = np.linspace(-4, 4, 41)
-    bottom = np.linspace(-6, 6, 61)
-    ct, cb = 1.2e-3, 0.8e-3                       # F m^-2
-    n = (ct * (top[None, :] - 0.1) + cb * (bottom[:, None] + 0.2)) / constants.e
-    rxx = 200 + 5000 * np.exp(-0.5 * (n / 2e15) ** 2)
-    return xr.Dataset(
-        {S.RXX: ((S.BOTTOM_GATE, S.TOP_GATE), rxx, {"units": "ohm", "long_name": "R"})},
-        coords={S.TOP_GATE: (S.TOP_GATE, top, {"units": "V", "long_name": "top gate voltage"}),
-                S.BOTTOM_GATE: (S.BOTTOM_GATE, bottom,
-                                {"units": "V", "long_name": "bottom gate voltage"}),
-                S.FIELD: ((), field, {"units": "T"})},
-        attrs={S.MAP_KIND: S.GATES})
+    return synthetic_gate_map(field)
 
 
 def _gate_result():
-    return GateResult(1.2e-3, 1e-5, 0.8e-3, 1e-5, 1.5, 0.01, 0.1, 0.01, -0.2, 0.01, 4,
-                      "neutrality ridge", "D = (Ct(Vt-Vt0) - Cb(Vb-Vb0))/2",
-                      extras={"ridge_points": {"top_gate": [0.1, 1.0], "bottom_gate": [-0.2, -1.7]}})
+    return synthetic_gate_result()
 
 
 def test_gate_map_neutrality_line_has_zero_density():

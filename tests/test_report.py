@@ -243,3 +243,22 @@ def test_report_of_the_shipped_monolayer_sample(tmp_path):
     for state in result.states:
         assert f"<td>{html.escape(R.F.state_label(state))}</td>" in states
     assert {"fan.png", "filling.png", "density.png", "residuals.png"} <= set(written)
+
+
+def test_ambiguous_scale_lists_the_candidates(tmp_path):
+    ds = synthetic_fan(n_field=12, n_gate=41)
+    result = synthetic_result(extra_states=False)
+    result.density_per_volt = result.density_per_volt_stderr = float("nan")
+    result.capacitance_per_area = result.density_offset = float("nan")
+    result.degeneracy = result.berry_phase = None
+    result.crosschecks = None
+    result.scale_from = "ambiguous: no R_xy, no dielectric given"
+    result.scale_candidates = [{"degeneracy": 2, "density_per_volt": ALPHA / 2},
+                               {"degeneracy": 4, "density_per_volt": ALPHA}]
+    written = R.write_fan_outputs(tmp_path, ds, result)
+    assert "filling.png" not in written and "fan.png" in written
+    page = written["report.html"].read_text(encoding="utf-8")
+    text = _text(page)
+    assert "more than one absolute scale" in text and "undetermined" in text
+    assert "filling-factor and density maps are not drawn" in text
+    assert page.count("<td>4</td>") >= 1 and "3.6 × 10" in text     # alpha / 2 = 3.6e14

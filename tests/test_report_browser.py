@@ -22,7 +22,8 @@ from pathlib import Path
 
 import pytest
 
-from _fan_data import synthetic_fan, synthetic_result
+from _fan_data import (synthetic_fan, synthetic_gate_map, synthetic_gate_result,
+                        synthetic_result)
 from fanmap import report as R
 
 pytestmark = pytest.mark.browser
@@ -150,3 +151,16 @@ def test_probe_sees_a_broken_page(chromium, tmp_path):
     assert any("notDefined" in e for e in probe["errors"])
     assert any("failed to load" in e and "missing.png" in e for e in probe["errors"])
     assert console
+
+
+def test_gate_report_renders_in_chromium(chromium, tmp_path):
+    from fanmap.gatemap import to_density_displacement
+
+    maps = [synthetic_gate_map(0.0), synthetic_gate_map(2.0)]
+    result = synthetic_gate_result()
+    page = R.write_gate_outputs(tmp_path, maps, result,
+                                to_density_displacement(maps[0], result))["report.html"]
+    probe, console = render(chromium, page)
+    assert probe["images"] == 2 and probe["broken"] == []
+    assert probe["tables"] >= 2 and "Calibration" in probe["headings"]
+    assert probe["errors"] == [] and console == []
