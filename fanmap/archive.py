@@ -708,8 +708,9 @@ def _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_f
                     keys[index] = key
                     progress.count(record["row"], resumed=True)
                     continue
-            settings = dict(job.settings, outputs=dict(job.settings["outputs"],
-                                                       map_dir=str(out_dir / "maps" / job.name)))
+            # Absolute paths: workers of an external scheduler may run in another folder.
+            map_dir = str((out_dir / "maps" / job.name).resolve())
+            settings = dict(job.settings, outputs=dict(job.settings["outputs"], map_dir=map_dir))
             yield index, job, settings
 
     def finish(index, row, retry=False):
@@ -739,7 +740,11 @@ def _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_f
     written = write_results_table(rows, out_dir)
     if summary:
         written.update(write_summary_figure(rows, out_dir / "summary.png", title=title))
-        written["index"] = _write_index(rows, out_dir)
+        try:
+            written["index"] = _write_index(rows, out_dir)
+        except Exception as exc:  # the table and summary are written; say what is missing
+            progress.say(f"warning: the HTML index was not written ({_describe_error(exc)}); "
+                         f"the results table and summary figure are complete")
     return BatchOutcome(out_dir=out_dir, maps=len(jobs), analysed=progress.done, resumed=progress.resumed,
                         failed=sum(r["status"] != "ok" for r in rows), outputs=written,
                         elapsed=time.perf_counter() - started)
@@ -757,7 +762,7 @@ def _run_distributed(client, todo, finish, max_in_flight):
 
     def submit_next():
         for index, job, settings in todo:
-            future = client.submit(analyse_one, str(job.path), settings,
+            future = client.submit(analyse_one, str(Path(job.path).resolve()), settings,
                                    key=f"fanmap-{run}-{index}-{job.name[:40]}", retries=0)
             pending[future.key] = (index, job, settings)
             running.add(future)
@@ -886,73 +891,82 @@ def _parse_time(text):
     return None
 
 
-def write_summary_figure(rows, target, title="fanmap batch"):
-    """Lever arm and V0 of every successful fan map, per device, against acquisition time.
+#: Devices drawn in the summary figure (all of them are in the table).
+SUMMARY_DEVICES = 12
 
-    Each device has its colour; each cooldown its marker.  Written as PNG and
-    PDF (atomically).  Returns ``{"summary_png": path, "summary_pdf": path}``.
+
+def write_summary_figure(rows, target, title="fanmap batch"):
+    """Lever arm and V0 of every successful fan map against acquisition time, per device.
+
+    One row of panels per device (each with its own scale: devices differ by
+    orders of magnitude), lever arm on the left and V0 on the right, one
+    marker and colour per cooldown, error bars of one standard error.
+    Written as PNG and PDF (atomically).  Returns ``{"summary_png": path,
+    "summary_pdf": path}``.
     """
-    import matplotlib
-    matplotlib.use("Agg", force=False)
-    import matplotlib.pyplot as plt
+    from matplotlib import rc_context
+    from matplotlib.figure import Figure
 
     from . import _style
 
     target = Path(target)
     fans = [r for r in rows if r["status"] == "ok" and r["map_kind"] == FAN
-            and math.isfinite(_number(r["density_per_volt"]))]
-    with plt.rc_context(_style.rc_params()):
-        figure = _draw_summary(plt, fans, rows, title)
-    written = {}
-    for suffix in (".png", ".pdf"):
-        path = target.with_suffix(suffix)
-        with atomic_path(path) as tmp:
-            figure.savefig(tmp)
-        written[f"summary_{suffix[1:]}"] = path
-    plt.close(figure)
+            and math.isfinite(_number(r["density_per_volt"])) and _parse_time(r["acquired"])]
+    devices = sorted({r["device"] or "(no device)" for r in fans})
+    shown = devices[:SUMMARY_DEVICES] or ["(none)"]
+    with rc_context(_style.rc_params()):
+        figure = Figure(figsize=(8.5, 1.3 + 2.1 * len(shown)), layout="constrained")
+        axes = figure.subplots(len(shown), 2, sharex=True, squeeze=False)
+        cooldowns = sorted({r["cooldown"] or "" for r in fans})
+        for row_axes, device in zip(axes, shown):
+            _draw_device(row_axes, [r for r in fans if (r["device"] or "(no device)") == device],
+                         cooldowns, device)
+        failed = sum(r["status"] != "ok" for r in rows)
+        more = f"; first {SUMMARY_DEVICES} of {len(devices)} devices shown" if len(devices) > len(shown) else ""
+        figure.suptitle(f"{title}\n{len(fans)} fan maps with a fit, {failed} of {len(rows)} maps failed{more}")
+        for ax in axes[-1]:
+            ax.set_xlabel("acquisition time (UTC)")
+            for label in ax.get_xticklabels():
+                label.set_rotation(30)
+                label.set_horizontalalignment("right")
+        if not fans:
+            axes[0][0].text(0.5, 0.5, "no fan map with a fit and an acquisition time", ha="center",
+                            va="center", transform=axes[0][0].transAxes)
+        written = {}
+        for suffix in (".png", ".pdf"):
+            path = target.with_suffix(suffix)
+            with atomic_path(path) as tmp:
+                figure.savefig(tmp)
+            written[f"summary_{suffix[1:]}"] = path
     return written
 
 
-def _draw_summary(plt, fans, rows, title):
+def _draw_device(row_axes, device_rows, cooldowns, device):
     from . import _style
 
-    figure, (top, bottom) = plt.subplots(2, 1, sharex=True, figsize=(7.5, 6.0), constrained_layout=True)
-    devices = sorted({r["device"] or "(no device)" for r in fans})
-    cooldowns = sorted({r["cooldown"] or "" for r in fans})
-    markers = "osD^v<>ph*"
-    colours = [style["color"] for style in _style.SERIES_STYLES]
-    for d_index, device in enumerate(devices):
-        for c_index, cooldown in enumerate(cooldowns):
-            chosen = [r for r in fans if (r["device"] or "(no device)") == device
-                      and (r["cooldown"] or "") == cooldown]
-            points = sorted(((_parse_time(r["acquired"]), r) for r in chosen if _parse_time(r["acquired"])),
-                            key=lambda item: item[0])
-            if not points:
-                continue
-            times = [t for t, _ in points]
-            label = device + (f", {cooldown}" if cooldown else "")
-            style = {"fmt": markers[c_index % len(markers)], "color": colours[d_index % len(colours)],
-                     "capsize": 2, "linestyle": "-", "linewidth": 0.8, "markersize": 4, "label": label}
-            # 1e14 m^-2 V^-1 is numerically 1e10 cm^-2 V^-1, the unit most lab notebooks use.
-            top.errorbar(times, [_number(r["density_per_volt"]) / 1e14 for _, r in points],
-                         yerr=[_zero_nan(_number(r["density_per_volt_stderr"])) / 1e14 for _, r in points],
-                         **style)
-            bottom.errorbar(times, [_number(r["zero_density_voltage"]) for _, r in points],
-                            yerr=[_zero_nan(_number(r["zero_density_voltage_stderr"])) for _, r in points],
-                            **style)
-    top.set_ylabel("lever arm α (10¹⁴ m⁻² V⁻¹)")
-    bottom.set_ylabel("zero-density voltage V₀ (V)")
-    bottom.set_xlabel("acquisition time (UTC)")
-    failed = sum(r["status"] != "ok" for r in rows)
-    top.set_title(f"{title}: {len(fans)} fan maps analysed, {failed} of {len(rows)} maps failed",
-                  fontsize=10)
-    if fans:
-        top.legend(fontsize=8, loc="best")
-        figure.autofmt_xdate()
-    else:
-        top.text(0.5, 0.5, "no fan map was analysed successfully", ha="center", va="center",
-                 transform=top.transAxes)
-    return figure
+    alpha_ax, v0_ax = row_axes
+    for c_index, cooldown in enumerate(cooldowns):
+        points = sorted(((_parse_time(r["acquired"]), r) for r in device_rows if (r["cooldown"] or "") == cooldown),
+                        key=lambda item: item[0])
+        if not points:
+            continue
+        style = dict(_style.SERIES_STYLES[c_index % len(_style.SERIES_STYLES)], capsize=2, linestyle="-",
+                     linewidth=0.8, markersize=4, label=cooldown or "(no cooldown)")
+        times = [t for t, _ in points]
+        # 1e14 m^-2 V^-1 is numerically 1e10 cm^-2 V^-1, the unit most lab notebooks use.
+        alpha_ax.errorbar(times, [_number(r["density_per_volt"]) / 1e14 for _, r in points],
+                          yerr=[_zero_nan(_number(r["density_per_volt_stderr"])) / 1e14 for _, r in points],
+                          **style)
+        v0_ax.errorbar(times, [_number(r["zero_density_voltage"]) for _, r in points],
+                       yerr=[_zero_nan(_number(r["zero_density_voltage_stderr"])) for _, r in points],
+                       **style)
+    alpha_ax.set_ylabel(f"{device}\nα (10¹⁴ m⁻² V⁻¹)")
+    v0_ax.set_ylabel("V₀ (V)")
+    for ax in row_axes:
+        ax.grid(color="#e3e3e3", linewidth=0.6)
+        ax.margins(x=0.08, y=0.25)
+    if device_rows:
+        v0_ax.legend(title="cooldown", loc="best")
 
 
 def _zero_nan(value):

@@ -131,9 +131,14 @@ def run(args):
         summary, title = not args.no_summary, f"fanmap batch of {args.source}"
     print(f"fanmap batch: {len(jobs)} maps -> {out_dir}", file=sys.stderr)
     print(f"note: {CAUTIONS[0]}", file=sys.stderr)
-    outcome = run_batch(jobs, out_dir, workers=args.workers, scheduler=args.scheduler, resume=args.resume,
-                        retry_failed=args.retry_failed, max_in_flight=args.in_flight, summary=summary,
-                        title=title)
+    try:
+        outcome = run_batch(jobs, out_dir, workers=args.workers, scheduler=args.scheduler,
+                            resume=args.resume, retry_failed=args.retry_failed,
+                            max_in_flight=args.in_flight, summary=summary, title=title)
+    except KeyboardInterrupt:
+        print(f"\nfanmap batch: stopped; every finished map is kept in {out_dir}/records. "
+              f"Run the same command with --resume to continue.", file=sys.stderr)
+        raise
     print(f"{outcome.maps} maps: {outcome.maps - outcome.failed} ok, {outcome.failed} failed "
           f"({outcome.analysed} analysed now, {outcome.resumed} from earlier runs) in "
           f"{outcome.elapsed:.1f} s", file=sys.stderr)

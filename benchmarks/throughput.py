@@ -1,0 +1,170 @@
+"""Throughput and memory of the batch machinery over an archive of simulated fans.
+
+Writes an archive of simulated 500 x 250 monolayer fans (each its own lever arm and
+V0), then analyses it
+
+1. serially in one process: ``analyse_one`` in a plain loop (no records, no table,
+   no dask): the analysis time itself;
+2. with ``run_batch`` and a local dask cluster of 1 worker, then of 2 workers
+   (records, table, summary figure and index included);
+3. with 2 workers again over the first half of the archive, to show that peak
+   memory does not grow with the number of maps.
+
+Each run is a separate process; its peak memory is the largest summed resident
+set of its whole process tree (the batch, the dask scheduler's process and every
+worker), sampled with psutil every 0.1 s.  The per-map analysis is the fan fit
+(cross-checks and per-map figures off, so that the machinery and not the figure
+writer is measured); the same settings go to every run.
+
+Targets: batch overhead per map under 15 % of the serial analysis time; at least
+1.7 times the 1-worker rate with 2 workers on 2 cores; peak memory independent
+of the archive size.
+
+Usage::
+
+    python benchmarks/throughput.py                 # 200 maps (about 15 minutes on 2 cores)
+    python benchmarks/throughput.py --maps 20       # a quick look
+"""
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+import psutil
+
+SHAPE = (250, 500)        # field rows, gate points
+ALPHA_SIO2 = 7.57e14      # m^-2 V^-1, 285 nm SiO2 (eps_r 3.9, common practice)
+
+
+def _settings():
+    from fanmap.archive import map_settings
+    return map_settings(material="graphene-monolayer", figures=False,
+                        analyses={"fan": True, "gates": False, "crosschecks": False})
+
+
+def _write_one(args):
+    from fanmap.simulate import simulate_fan, write_map
+
+    index, folder = args
+    rng = np.random.default_rng(index)
+    fan = simulate_fan("graphene-monolayer", gate=np.linspace(-40, 40, SHAPE[1]),
+                       field=np.linspace(1.5, 14.0, SHAPE[0]),
+                       density_per_volt=ALPHA_SIO2 * rng.uniform(0.9, 1.1),
+                       zero_density_voltage=rng.uniform(-2.0, 5.0), seed=index)
+    path = Path(folder) / f"device{index % 4}" / f"fan_{index:04d}.nc"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    write_map(fan, path)
+    return path
+
+
+def make_archive(folder, count, processes=2):
+    folder.mkdir(parents=True, exist_ok=True)
+    with ProcessPoolExecutor(processes) as pool:
+        return sorted(pool.map(_write_one, [(i, folder) for i in range(count)]))
+
+
+# --- one measured run (in its own process) ---------------------------------------------
+
+def _phase(kind, archive, out, count):
+    from fanmap import archive as batch
+
+    root, maps = batch.find_maps(archive)
+    maps = maps[:count]
+    start = time.perf_counter()
+    if kind == "serial":
+        failed = sum(batch.analyse_one(path, _settings())["status"] != "ok" for path in maps)
+    else:
+        outcome = batch.run_batch(batch.jobs_for_paths(maps, root, _settings()), out,
+                                  workers=int(kind), stream=None)
+        failed = outcome.failed
+    print(json.dumps({"seconds": time.perf_counter() - start, "maps": len(maps), "failed": failed}))
+
+
+def _tree_rss(process):
+    total = 0
+    for proc in [process] + process.children(recursive=True):
+        try:
+            total += proc.memory_info().rss
+        except psutil.Error:
+            pass
+    return total
+
+
+def measure(kind, archive, out, count):
+    """Run one phase in a fresh process; return its result with the tree's peak memory."""
+    command = [sys.executable, __file__, "_phase", kind, str(archive), str(out), str(count)]
+    proc = subprocess.Popen(command, stdout=subprocess.PIPE, text=True,
+                            env=dict(os.environ, OMP_NUM_THREADS="1"))
+    watched, peak = psutil.Process(proc.pid), 0
+    while proc.poll() is None:
+        try:
+            peak = max(peak, _tree_rss(watched))
+        except psutil.Error:
+            pass
+        time.sleep(0.1)
+    stdout, _ = proc.communicate()
+    if proc.returncode != 0:
+        raise SystemExit(f"{kind} run failed (exit {proc.returncode})")
+    result = json.loads(stdout.strip().splitlines()[-1])
+    result.update(peak_mib=peak / 2**20, rate=result["maps"] / result["seconds"])
+    return result
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description="throughput and memory of fanmap batch")
+    parser.add_argument("--maps", type=int, default=200, help="maps in the archive (default 200)")
+    parser.add_argument("--workdir", type=Path, help="where the archive goes (default: a temporary folder)")
+    parser.add_argument("--keep", action="store_true", help="keep the archive and outputs")
+    args = parser.parse_args(argv)
+    workdir = args.workdir or Path(tempfile.mkdtemp(prefix="fanmap-throughput-"))
+    archive = workdir / "archive"
+    try:
+        started = time.perf_counter()
+        make_archive(archive, args.maps)
+        size = sum(p.stat().st_size for p in archive.rglob("*.nc")) / 2**20
+        print(f"archive: {args.maps} simulated {SHAPE[0]} x {SHAPE[1]} fans, {size:.0f} MiB, "
+              f"written in {time.perf_counter() - started:.0f} s; cores available: "
+              f"{len(os.sched_getaffinity(0))}; load average before the runs: "
+              f"{os.getloadavg()[0]:.1f}")
+        half = max(1, args.maps // 2)
+        runs = {
+            "serial, one process": measure("serial", archive, workdir / "out-serial", args.maps),
+            "batch, 1 worker": measure("1", archive, workdir / "out-1", args.maps),
+            "batch, 2 workers": measure("2", archive, workdir / "out-2", args.maps),
+            f"batch, 2 workers, {half} maps": measure("2", archive, workdir / "out-half", half),
+        }
+        print(f"\n{'run':32s} {'maps':>5s} {'failed':>6s} {'time s':>8s} {'maps/s':>7s} {'peak MiB':>9s}")
+        for name, r in runs.items():
+            print(f"{name:32s} {r['maps']:5d} {r['failed']:6d} {r['seconds']:8.1f} {r['rate']:7.3f} "
+                  f"{r['peak_mib']:9.0f}")
+        serial, one, two = (runs["serial, one process"], runs["batch, 1 worker"], runs["batch, 2 workers"])
+        half_run = runs[f"batch, 2 workers, {half} maps"]
+        overhead = (one["seconds"] - serial["seconds"]) / serial["seconds"]
+        print(f"\nserial analysis time per map:            {serial['seconds'] / serial['maps']:.3f} s")
+        print(f"batch overhead per map (1 worker):        {overhead * 100:+.1f} % of it "
+              f"(target < 15 %; includes cluster start, records, table, summary)")
+        print(f"speed-up, 2 workers over 1 worker:        {two['rate'] / one['rate']:.2f}x (target >= 1.7x)")
+        print(f"speed-up, 2 workers over serial:          {two['rate'] / serial['rate']:.2f}x")
+        print(f"peak memory, {two['maps']} vs {half_run['maps']} maps (2 workers): "
+              f"{two['peak_mib']:.0f} vs {half_run['peak_mib']:.0f} MiB "
+              f"(ratio {two['peak_mib'] / half_run['peak_mib']:.2f}; independent of size means ~1)")
+        print(f"load average after the runs: {os.getloadavg()[0]:.1f} (other work on the machine "
+              f"slows every run alike only if it is steady)")
+    finally:
+        if not args.keep:
+            shutil.rmtree(workdir, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    if len(sys.argv) > 1 and sys.argv[1] == "_phase":
+        _phase(sys.argv[2], Path(sys.argv[3]), Path(sys.argv[4]), int(sys.argv[5]))
+    else:
+        main()
