@@ -817,3 +817,21 @@ def test_interrupted_last_sweep_in_a_gridded_file(tmp_path):
     assert "the last sweep stops early: its final 24 of 61 points" in read.attrs["recognised"]
     assert "lazy opening applies to netCDF only" in open_map(write_long(tmp_path / "x.csv", hand_fan()),
                                                              lazy=True).attrs["recognised"]
+
+
+def test_lockin_channel_names_and_jittered_gate_set_points(tmp_path):
+    # field swept at each gate set point; the gate is read back with jitter
+    fan = hand_fan(n_field=11, n_gate=5)
+    rng = np.random.default_rng(4)
+    lines = ["magnet_field (T)\tdac_ch1 (V)\tlockin_amplitude (uV)"]
+    for j, g in enumerate(fan.gate.values):
+        readback = g + rng.normal(0, 1e-5)
+        for i, b in enumerate(fan.field.values):
+            lines.append(f"{b}\t{readback}\t{fan.rxx.values[i, j] * 1e-8 * 1e6:.17g}")
+    path = tmp_path / "lockin.tsv"
+    path.write_text("\n".join(lines))
+    read = open_map(path, excitation_current="10 nA")
+    assert read.sizes["gate"] == 5
+    np.testing.assert_allclose(read.gate.values, fan.gate.values, atol=1e-4)
+    np.testing.assert_allclose(read.rxx.values, fan.rxx.values, rtol=1e-9)
+    assert "signal: 'lockin_amplitude'" in read.attrs["recognised"]

@@ -46,6 +46,8 @@ def _signal_component(squashed):
     if squashed in ("r", "r4pt", "r4p", "r2pt", "resistance", "rlong", "rl", "rho", "rsq",
                     "rsheet", "g", "g2pt", "conductance", "sigma", "longitudinal"):
         return XX
+    if any(word in squashed for word in ("lockin", "signal", "amplitude", "magnitude")):
+        return XX  # a lock-in output with no xx/xy in its name: the first one is taken as R_xx
     return None
 
 
