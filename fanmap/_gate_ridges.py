@@ -87,25 +87,31 @@ def best_ratio(z, top, bottom, edge_share=0.03):
 
 
 def profile(z, top, bottom, q, fine=False):
-    """Map ``z`` averaged along the lines V_t + q V_b = u: returns ``(u, mean, count)``.
+    """Map ``z`` averaged along the lines V_t + q V_b = u: ``(u, mean, count, noise)``.
 
     ``fine=True`` bins at half the finer pixel step (for narrow, dense lines).
+    ``noise`` is the median standard error of a bin's mean.
     """
     finite = np.isfinite(z)
     step = 0.5 * min(top[1] - top[0], q * (bottom[1] - bottom[0])) if fine else None
     index, u0, step = _bin_index(z, top, bottom, q, step)
     counts = np.bincount(index[finite])
     sums = np.bincount(index[finite], z[finite])
+    squares = np.bincount(index[finite], z[finite] ** 2)
     with np.errstate(invalid="ignore", divide="ignore"):
         means = sums / counts
+        # Standard error of each bin's mean: an upper bound of the noise (the spread
+        # along a line includes its dependence on D).
+        errors = np.sqrt(np.maximum(squares / counts - means**2, 0.0) / np.maximum(counts - 1, 1))
     centres = u0 + (np.arange(counts.size) + 0.5) * step
     keep = counts >= max(3, 0.2 * np.median(counts[counts > 0]))
     # Trim the sparse ends; fill sparse bins inside (pixel and bin grids beat) so
     # that the profile stays evenly spaced.
     first, last = np.flatnonzero(keep)[[0, -1]]
-    centres, means, counts, keep = (a[first:last + 1] for a in (centres, means, counts, keep))
+    centres, means, counts, errors, keep = (a[first:last + 1]
+                                            for a in (centres, means, counts, errors, keep))
     means = np.where(keep, means, np.interp(centres, centres[keep], means[keep]))
-    return centres, means, counts
+    return centres, means, counts, float(np.median(errors[keep]))
 
 
 def rotated_grid(values, top, bottom, q, step=None):

@@ -87,10 +87,10 @@ def _smooth(p):
 
 def _neutrality_ridge(arrays, q, name):
     z = ridges.log_signal(arrays["rxx"])
-    u, p, _ = ridges.profile(z, arrays["top"], arrays["bottom"], q)
+    u, p, _, noise = ridges.profile(z, arrays["top"], arrays["bottom"], q)
     ps = _smooth(p)
     peak = int(np.argmax(ps))
-    noise = np.std(p - ps) + 1e-12
+    noise = max(noise, 1e-12)
     prominence = ps[peak] - np.median(ps)
     if prominence < 6 * noise or peak in (0, ps.size - 1):
         raise NoFanError(
@@ -142,8 +142,10 @@ def _lattice(positions, weights, smallest):
     if positions.size < 3 or span <= 0:
         return np.nan, np.zeros(positions.size, int), np.zeros(positions.size, bool)
 
+    anchors = positions[np.argsort(weights)[-10:]]   # the strongest lines anchor the lattice
+
     def scores(trials):
-        rel = (positions[None, :, None] - positions[None, None, :]) / trials[:, None, None]
+        rel = (positions[None, :, None] - anchors[None, None, :]) / trials[:, None, None]
         off = rel - np.rint(rel)                       # (trial, line, anchor)
         kernel = np.exp(-0.5 * (off / 0.1) ** 2)
         return np.max(np.einsum("j,tja->ta", weights, kernel), axis=1) / weights.sum()
@@ -162,18 +164,26 @@ def _lattice(positions, weights, smallest):
         slope, _ = np.polyfit(index[on_grid], positions[on_grid], 1,
                               w=np.sqrt(weights[on_grid]))
         spacing = float(slope)
+    # One line per lattice site: the strongest (others are split or spurious minima).
+    for site in np.unique(index[on_grid]):
+        same = np.flatnonzero(on_grid & (index == site))
+        if same.size > 1:
+            on_grid[same[same != same[np.argmax(weights[same])]]] = False
     index = index - index[on_grid].min() if on_grid.any() else index
     return float(spacing), index, on_grid
 
 
 def _quantum_hall_lines(arrays, q, name):
     z = ridges.log_signal(arrays["rxx"])
-    u, p, _ = ridges.profile(z, arrays["top"], arrays["bottom"], q, fine=True)
+    u, p, _, noise = ridges.profile(z, arrays["top"], arrays["bottom"], q, fine=True)
     ps = _smooth(p)
-    # Robust noise of the profile: most of it is smooth background between narrow lines.
-    noise = 1.4826 * np.median(np.abs(np.diff(p, 2))) / np.sqrt(6) + 1e-12
     # QH minima are deep: at least a 5 % dip (0.05 in log R) and well above the noise.
     minima, props = signal.find_peaks(-p, prominence=max(6 * noise, 0.05))
+    if minima.size:
+        # Weak wiggles next to strong lines are not states: a tenth of the strong ones at least.
+        strong = np.median(np.sort(props["prominences"])[-5:])
+        chosen = props["prominences"] >= 0.1 * strong
+        minima, props = minima[chosen], {"prominences": props["prominences"][chosen]}
     if minima.size < 3:
         raise NoFanError(
             f"{name}: fewer than three quantum Hall minima along constant-density lines at "
