@@ -3,12 +3,14 @@
 Each row of a fan map is one gate sweep at fixed field.  For that field the
 material's Landau levels (from :mod:`fanmap.physics`, split by broken-symmetry
 gaps, see :mod:`fanmap._levels`) are broadened with a width
-Gamma(B) = Gamma_1 sqrt(B / 1 T), smeared exactly by -df/dE, and the chemical
+Gamma(B) = Gamma_1 sqrt(B / 1 T) (a Gaussian width growing as sqrt(B) gives the
+Dingle-like damping exp(-c / B) of low-field oscillations), smeared exactly by
+-df/dE, and the chemical
 potential of every pixel is solved from its density (:mod:`fanmap._occupation`).
 
 Transport (per pixel): the scattering rate follows the thermally smeared
-density of extended states at mu, S = D_ext(mu) / D_0(mu) (Born
-approximation; D_0 is the zero-field density of states), so that
+density of extended states at mu, S = D_ext(mu) / D_0(n) (Born
+approximation; D_0 is the zero-field density of states at the pixel's density), so that
 
     sigma_xx = e mu_t n_c S / (S^2 + (mu_t B)^2) + sigma_leak,
     sigma_xy = e n_H mu_t (mu_t B) / (S^2 + (mu_t B)^2),
@@ -20,13 +22,16 @@ the Drude model (rho_xx = 1 / (e n mu_t), rho_xy = B / (e n)), with
 Shubnikov-de Haas oscillations rho_xx ~ rho_0 S; in a gap S -> 0 and sigma_xy
 = nu e^2/h exactly, so rho_xy sits on h / (nu e^2) and rho_xx -> 0.  R_xx =
 rho_xx L / W.  Sign convention: R_xy > 0 for electrons at positive field.
+Fractional states of the 2DEG (composite-fermion Landau levels) further scale S
+and set n_H inside the lowest two spin levels, see :mod:`fanmap._fractional`.
+Moire bands: a flat band of 4 n0 per side (split at s = +-2 by a correlated gap),
+filled from both edges, then a gap and a remote band; satellite fans follow.
 
 Measurement artefacts (noise, drift, hysteresis, mixing, spikes, gaps,
 interrupted sweep, irregular field steps, B = 0 row, field signs) are each
 switched by an option and all randomness comes from ``seed``.
 """
 
-from fractions import Fraction
 
 import numpy as np
 import xarray as xr

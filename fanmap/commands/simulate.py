@@ -7,10 +7,9 @@ import numpy as np
 from .. import _schema as S
 from .._atomic import atomic_path
 from ..errors import InputError
-from ..simulate import PRESETS, simulate_fan, simulate_gate_map, write_map
+from ..simulate import MEV, PRESETS, simulate_fan, simulate_gate_map, write_map
 
 HELP = "write a simulated Landau fan or dual-gate map with known answers (synthetic data)"
-MEV = 1.602176634e-22
 
 
 def register(subparsers):
