@@ -26,3 +26,10 @@ class FanmapAccessor:
         from .fanfit import fit_fan
 
         return fit_fan(self._ds, **options)
+
+    def gates(self, *others, **options):
+        """Calibrate both gates of this gate map (jointly with ``others``); see
+        :func:`fanmap.gatemap.fit_gates` for the options."""
+        from .gatemap import fit_gates
+
+        return fit_gates([self._ds, *others], **options)

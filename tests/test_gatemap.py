@@ -457,3 +457,10 @@ def test_gates_command_on_the_sample_maps(tmp_path):
     assert data["top_capacitance"] == pytest.approx(truth["truth_top_capacitance"], rel=5e-3)
     assert data["bottom_capacitance"] == pytest.approx(truth["truth_bottom_capacitance"], rel=5e-3)
     assert data["top_capacitance_stderr"] > 0 and data["bottom_capacitance_stderr"] > 0
+
+
+def test_accessor_fits_jointly():
+    import fanmap.accessor  # noqa: F401  (registers ds.fanmap)
+
+    result = hand_built_map(field=0.0).fanmap.gates(hand_built_map(field=8.0, seed=1))
+    assert result.top_capacitance == pytest.approx(TRUTH["c_top"], rel=5e-3)
