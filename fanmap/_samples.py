@@ -28,12 +28,12 @@ SAMPLES = {
     "mx07_monolayer_fan_both_signs.nc": (
         "MX-07, same cooldown, a quick fan at -9...+9 T with the usual troubles: alternating "
         "sweep directions with 0.4 V hysteresis, 0.6 V drift of V0, 2 % R_xy mixed into R_xx, "
-        "correlated noise, spikes, NaN gaps and an interrupted last sweep",
+        "correlated noise, spikes, NaN gaps, uneven field steps and an interrupted last sweep",
         lambda: simulate_fan("graphene-monolayer", gate=np.linspace(-40, 40, 320),
                              field=np.linspace(0.1, 9, 90), field_sign="both", seed=4,
                              zero_density_voltage=4.6, hysteresis=0.4, drift=0.6,
                              contact_mixing=0.02, correlated_noise=0.01, spikes=25, nan_gaps=8,
-                             interrupted=0.55)),
+                             interrupted=0.55, irregular_field=0.3)),
     "bl12_bilayer_fan.nc": (
         "BL-12, hBN-encapsulated bilayer graphene, 40 nm hBN to a graphite back gate, Nightjar "
         "cooldown 5, 1.6 K: fan -6...6 V, 0.06...12 T, R_xx only",

@@ -394,6 +394,16 @@ def test_command_line_writes_a_map_and_rejects_bad_input(tmp_path, capsys):
     assert (tmp_path / "fan.png").stat().st_size > 1000
     assert main(["simulate", "--material", "2deg"]) == 2
     assert "--out" in capsys.readouterr().err
+    plain = tmp_path / "plain.nc"
+    assert main(["simulate", "--material", "2deg", "--out", str(plain), "--fields", "10", "14",
+                 "3", "--no-fractional", "--no-broken-symmetry", "--seed", "4"]) == 0
+    attrs = xr.open_dataset(plain).attrs
+    assert attrs["truth_fractional_fillings"] == "" and attrs["truth_seed"] == 4
+
+
+def test_temperature_series_needs_two_temperatures():
+    with pytest.raises(InputError, match="two temperatures"):
+        simulate_temperature_series("2deg", (1.0,), field=[1.0])
 
 
 # --- shipped samples -------------------------------------------------------------------------

@@ -44,6 +44,11 @@ def register(subparsers):
     dev.add_argument("--mobility", type=float, metavar="M2/VS")
     dev.add_argument("--twist-angle", type=float, metavar="DEG", help="moire twist angle")
     dev.add_argument("--no-hall", action="store_true", help="R_xx only")
+    dev.add_argument("--no-broken-symmetry", action="store_true",
+                     help="no broken-symmetry integer states")
+    dev.add_argument("--no-fractional", action="store_true", help="2deg: no fractional states")
+    dev.add_argument("--no-correlated-states", action="store_true",
+                     help="moire: no gaps or satellite fans at s = +-2")
     dev.add_argument("--quantum-capacitance", action="store_true",
                      help="monolayer: include the Dirac quantum-capacitance term")
     dev.add_argument("--contact-resistance", type=float, default=0.0, metavar="OHM",
@@ -92,7 +97,8 @@ def run(args):
                   broadening=None if args.broadening is None else args.broadening * MEV,
                   noise=args.noise, noise_floor=args.noise_floor,
                   correlated_noise=args.correlated_noise, spikes=args.spikes,
-                  nan_gaps=args.nan_gaps, interrupted=args.interrupted)
+                  nan_gaps=args.nan_gaps, interrupted=args.interrupted,
+                  broken_symmetry={} if args.no_broken_symmetry else None)
     if args.gate_map:
         ds = simulate_gate_map(args.material, top_gate=_axis(args.top_gate),
                                bottom_gate=_axis(args.bottom_gate), field=args.field,
@@ -103,6 +109,8 @@ def run(args):
                           density_per_volt=args.lever_arm,
                           zero_density_voltage=args.zero_density_voltage,
                           hall=not args.no_hall, twist_angle_deg=args.twist_angle,
+                          fractional=False if args.no_fractional else None,
+                          correlated_states=not args.no_correlated_states,
                           quantum_capacitance=args.quantum_capacitance, drift=args.drift,
                           hysteresis=args.hysteresis, contact_mixing=args.contact_mixing,
                           irregular_field=args.irregular_field,
