@@ -403,7 +403,10 @@ def _analyse_gates(ds, analysis, map_dir, figures):
 
     def report():
         from .report import write_gate_outputs
-        write_gate_outputs(map_dir, [ds], result, to_density_displacement(ds, result))
+        calibrated = all(math.isfinite(_number(getattr(result, name))) for name in (
+            "top_capacitance", "bottom_capacitance", "top_offset", "bottom_offset"))
+        # The (n, D) map needs absolute capacitances; a zero-field map alone gives their ratio.
+        write_gate_outputs(map_dir, [ds], result, to_density_displacement(ds, result) if calibrated else None)
 
     if map_dir is not None:
         _write_map_outputs(map_dir, result, figures, report)
@@ -411,14 +414,21 @@ def _analyse_gates(ds, analysis, map_dir, figures):
 
 
 def _write_map_outputs(map_dir, result, figures, report):
-    """Figures, report page and result JSON (the report writer writes the JSON too)."""
+    """Figures, report page and result JSON.
+
+    A figure that cannot be drawn does not undo a good fit: the map keeps its
+    numbers, gets a warning, and its result JSON is written alone.
+    """
     from .report import RESULT_NAME
     from .results import dumps
 
     if figures:
-        report()
-    else:
-        write_text_atomic(Path(map_dir) / RESULT_NAME, dumps(result))
+        try:
+            report()       # writes result.json too
+            return
+        except Exception as exc:
+            result.warnings.append(f"figures and report page not written: {_describe_error(exc)}")
+    write_text_atomic(Path(map_dir) / RESULT_NAME, dumps(result))
 
 
 def analyse_one(path, settings):
@@ -605,6 +615,11 @@ def _dask_client(workers, scheduler):
             raise InputError(f"cannot connect to the dask scheduler at {scheduler}: {exc}; "
                              f"check the address (tcp://HOST:PORT) and that the scheduler runs") from None
         with client:
+            try:
+                client.wait_for_workers(1, timeout=60)
+            except TimeoutError:
+                raise InputError(f"the dask scheduler at {scheduler} has had no worker for 60 s; "
+                                 f"start workers (dask worker {scheduler}) and run again") from None
             yield client
         return
     with warnings.catch_warnings():
@@ -701,8 +716,11 @@ def _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_f
     def todo():
         for index, job in enumerate(jobs):
             if resume:
-                key = _record_key(file_sha256(job.path), settings_sha256(job.settings))
-                record = _read_record(out_dir, key)
+                try:
+                    key = _record_key(file_sha256(job.path), settings_sha256(job.settings))
+                except OSError:      # gone or unreadable now: analyse_one reports it in the row
+                    key = None
+                record = _read_record(out_dir, key) if key else None
                 if record is not None and not record["retry"] and (
                         record["row"]["status"] == "ok" or not retry_failed):
                     keys[index] = key
