@@ -259,8 +259,10 @@ def _image(ax, x, y, values, norm, cmap):
                              rasterized=True)
     extent = (*_half_step_edges(x), *_half_step_edges(y))
     if _uniform(x) and _uniform(y):
+        # "auto": nearest-neighbour when magnified, anti-aliased when a pixel of the figure
+        # covers several of the map's, so that narrow minima are not skipped.
         return ax.imshow(values, origin="lower", extent=extent, aspect="auto",
-                         interpolation="nearest", norm=norm, cmap=cmap)
+                         interpolation="auto", norm=norm, cmap=cmap)
     image = NonUniformImage(ax, interpolation="nearest", extent=extent, norm=norm, cmap=cmap)
     image.set_data(x, y, np.ma.masked_invalid(values))
     ax.add_image(image)
@@ -271,8 +273,17 @@ def _state_gate(state, field):
     return state.intercept + state.slope * np.abs(field)
 
 
-def _draw_state_line(ax, x_fit, y_fit, x_ext, y_ext, style):
+def _draw_state_line(ax, x_fit, y_fit, x_ext, y_ext, style, thin=False):
+    """A fitted line: bold over its fitted field range, faint where extended.
+
+    ``thin`` draws both parts as hairlines, for maps where the line sits right on
+    the feature it marks (the filling-factor map) and must not hide it.
+    """
     kw = {"color": style["color"], "linestyle": style["linestyle"], "solid_capstyle": "round"}
+    if thin:
+        ax.plot(x_ext, y_ext, linewidth=0.5, alpha=0.5, **kw)
+        ax.plot(x_fit, y_fit, linewidth=0.6, alpha=0.9, path_effects=_style.halo(1.2), **kw)
+        return
     ax.plot(x_ext, y_ext, linewidth=0.7, alpha=0.55, path_effects=_style.halo(1.8), **kw)
     ax.plot(x_fit, y_fit, linewidth=style["linewidth"], path_effects=_style.halo(), **kw)
 
@@ -536,13 +547,14 @@ def _resample_in_filling(gate, field, values, result, nu_lo, nu_hi):
     than one gate step, so no minimum is skipped; outside the gate window it is NaN.
     """
     gate_step = float(np.median(np.diff(gate))) if gate.size > 1 else 1.0
-    volts_per_filling = np.abs(field).max() * FLUX_QUANTUM_SINGLE_ELECTRON / result.density_per_volt
-    count = int(np.clip((nu_hi - nu_lo) * volts_per_filling / gate_step, 200, 2500))
+    # V_g - V0 = nu |B| / (alpha h/e): the gate span of one filling step at the top field.
+    volts_per_filling = np.abs(field).max() / (FLUX_QUANTUM_SINGLE_ELECTRON * result.density_per_volt)
+    count = int(np.clip((nu_hi - nu_lo) * volts_per_filling / gate_step, 200, 1600))
     nu_grid = np.linspace(nu_lo, nu_hi, count)
     out = np.full((field.size, count), np.nan)
     for k, b in enumerate(field):
-        wanted = result.zero_density_voltage + nu_grid * abs(b) * (
-            FLUX_QUANTUM_SINGLE_ELECTRON / result.density_per_volt)
+        wanted = result.zero_density_voltage + nu_grid * abs(b) / (
+            FLUX_QUANTUM_SINGLE_ELECTRON * result.density_per_volt)
         out[k] = np.interp(wanted, gate, values[k], left=np.nan, right=np.nan)
     return nu_grid, out
 
@@ -598,7 +610,7 @@ def plot_filling_map(fan_map, result, *, signal=None, scale="auto", max_filling=
             b_ext = b_ext[(v_ext >= gate_lo) & (v_ext <= gate_hi)]
             nu_fit = filling_from_density(_density(_state_gate(state, b_fit), result), b_fit)
             nu_ext = filling_from_density(_density(_state_gate(state, b_ext), result), b_ext)
-            _draw_state_line(ax, nu_fit, b_fit, nu_ext, b_ext, style)
+            _draw_state_line(ax, nu_fit, b_fit, nu_ext, b_ext, style, thin=True)
             inside = (nu_ext >= nu_lo) & (nu_ext <= nu_hi)
             if inside.any():
                 # Every label goes above the top edge: the lines are vertical here.

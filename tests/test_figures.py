@@ -111,6 +111,23 @@ def test_filling_map_lines_are_vertical_at_their_filling():
     assert "6" in {t.get_text() for t in fig.axes[0].texts}
 
 
+def test_filling_map_image_has_its_minima_at_the_fillings():
+    # The synthetic map has R_xx dips at nu = +-2, 6, 10, 14 (nu = n h/(e B), CODATA h, e);
+    # redrawn against nu, the field-averaged image must dip there too.
+    ds, result = synthetic_fan(), synthetic_result(extra_states=False)
+    fig = F.plot_filling_map(ds, result)
+    image = fig.axes[0].get_images()[0]
+    data = np.ma.filled(image.get_array().astype(float), np.nan)
+    x0, x1, _, _ = image.get_extent()
+    nu = np.linspace(x0, x1, data.shape[1] + 1)
+    nu = (nu[1:] + nu[:-1]) / 2
+    profile = np.nanmean(data[data.shape[0] // 2:], axis=0)      # upper half of the field range
+    for filling in (-10, -6, 6, 10):
+        near = np.abs(nu - filling) < 1.5
+        between = np.abs(nu - (filling + 2)) < 0.5               # halfway to the next state
+        assert profile[near].min() < 0.5 * np.nanmean(profile[between]), filling
+
+
 def test_density_map_puts_a_state_at_nu_e_b_over_h():
     ds, result = synthetic_fan(), synthetic_result(extra_states=False)
     result.states = [State("2", "integer", 2 / (ALPHA * H_OVER_E), V0, 10, 1.0, 9.0)]
