@@ -284,7 +284,19 @@ def simulate_fan(material="graphene-monolayer", *, gate=None, field=None,
     Returns
     -------
     xarray.Dataset
-        Fan map (see :mod:`fanmap._schema`), ground truth in ``truth_*`` attributes.
+        Fan map (see :mod:`fanmap._schema`), ground truth in ``truth_*`` attributes (SI):
+        ``truth_density_per_volt``, ``truth_zero_density_voltage`` (V0 of the first row),
+        ``truth_capacitance_per_area``, ``truth_degeneracy``, ``truth_berry_phase``,
+        ``truth_temperature``, ``truth_effective_mass`` / ``truth_fermi_velocity``,
+        ``truth_drift``, ``truth_hysteresis``, ``truth_contact_mixing``, ``truth_seed``, ...;
+        ``truth_main_fillings``, ``truth_broken_symmetry_fillings`` (integer arrays) and
+        ``truth_fractional_fillings`` ("1/3,2/5") are the states *resolved somewhere in the
+        map* -- gap at least ``ONSET_GAP_RATIO`` times the extended-state width combined with
+        1.8 k_B T, at a density inside the sweep -- and ``truth_*_onset_fields`` the lowest
+        field (on about 60 sampled rows) where that holds.  Moire maps add
+        ``truth_cell_density``, ``truth_full_filling_density``, ``truth_twist_angle_deg``,
+        ``truth_band_fillings`` and ``truth_satellites`` ("t:s,t:s").  netCDF returns
+        one-element lists as scalars (use ``np.atleast_1d``); empty lists are stored as "".
 
     Examples
     --------
