@@ -61,6 +61,7 @@ class _Context:
     units_read: dict = _dc_field(default_factory=dict)  # name in the map -> (units as read, origin)
     fixed_field: str = None      # a constant field column (the field of a gate map)
     fixed_gates: list = _dc_field(default_factory=list)  # gates held constant in a fan
+    used: set = _dc_field(default_factory=set)  # variables of the file that went into the map
 
     def note(self, text):
         self.recognised.append(text)
@@ -329,6 +330,7 @@ def _decide_kind(chosen, plain_gates, candidates, raw, info, ctx):
         gate = chosen.get(R.GATE) or gates[0]
         ctx.note(f"field: {chosen[R.FIELD]!r} {ctx.reasons.get(chosen[R.FIELD], '')}")
         ctx.note(f"gate: {gate!r} {ctx.reasons.get(gate, 'by units')}")
+        ctx.used.update((chosen[R.FIELD], gate))
         return kind, {S.FIELD: chosen[R.FIELD], S.GATE: gate}
     top, bottom = chosen.get(R.TOP), chosen.get(R.BOTTOM)
     rest = [g for g in gates if g not in (top, bottom)]
@@ -344,6 +346,7 @@ def _decide_kind(chosen, plain_gates, candidates, raw, info, ctx):
     for label, name in (("bottom gate", bottom), ("top gate", top)):
         if name in ctx.reasons:
             ctx.note(f"{label}: {name!r} {ctx.reasons[name]}")
+    ctx.used.update((bottom, top))
     return kind, {S.BOTTOM_GATE: bottom, S.TOP_GATE: top}
 
 
@@ -851,6 +854,14 @@ def _finish(ds, raw, info, scalars, names, ctx):
         if ds[role].attrs.get("sheet_resistivity"):
             ds[role].attrs["long_name"] = S.LONG_NAMES[role].replace("resistance", "resistivity") \
                 + " (per square)"
+    ctx.used.update(names.values())
+    ctx.used.update(ctx.fixed_gates)
+    if ctx.fixed_field:
+        ctx.used.add(ctx.fixed_field)
+    unused = [n for n in raw.data_vars if n not in ctx.used and n != BLOCK
+              and info.get(n, (None,))[0] not in (R.SWEEP, R.DIRECTION)]
+    if unused:
+        ctx.note(f"not used: {', '.join(map(repr, unused))}")
     for var, (unit_text, origin) in ctx.units_read.items():
         if var in ds.variables:
             ds[var].attrs["original_units"] = unit_text or "(none: SI assumed)"
