@@ -417,7 +417,13 @@ def _design(maps, use_scale):
         rows.append(x)
         target.append(pts["top"])
         sigma.append(np.maximum(pts["stderr"], 1e-3 * m["profile_step"]))
-        groups.append(i * 100000 + np.searchsorted(np.unique(pts["trace"]), pts["trace"]))
+        if m["mode"] == "neutrality":
+            # Blocks of neighbouring traces: their points share slow noise and drift.
+            trace = np.searchsorted(np.unique(pts["trace"]), pts["trace"])
+            groups.append(i * 100000 + trace // 5)
+        else:
+            # Whole lines: a line displaced by its background moves all its points.
+            groups.append(i * 100000 + 50000 + pts["line"])
         owner.append(np.full(pts["top"].size, i))
     return (np.vstack(rows), np.concatenate(target), np.concatenate(sigma),
             np.concatenate(groups), np.concatenate(owner), bool(absolute), relative)
@@ -447,7 +453,8 @@ def _joint_fit(maps, use_scale, seed=0, bootstrap=200):
     resid = (y[keep] - x[keep] @ coef) * np.sqrt(w[keep])
     dof = max(keep.sum() - x.shape[1], 1)
     cov = np.linalg.pinv(xw.T @ xw) * max(1.0, np.sum(resid**2) / dof)
-    # Points along one trace share its noise: a bootstrap over traces checks the covariance.
+    # Points of one line (or of neighbouring traces) share errors: a bootstrap over those
+    # groups checks the covariance, and the larger of the two is kept.
     rng = np.random.default_rng(seed)
     unique = np.unique(groups[keep])
     pos = np.searchsorted(unique, groups[keep])
@@ -550,7 +557,9 @@ def _neutral_point(maps, q, k):
         agree = symmetric and abs(centre - lowest[0]) < max(
             3 * np.hypot(stderr, lowest[1]), 0.03 * np.ptp(vb))
         if agree:
-            estimates.append((centre, stderr, "symmetry"))
+            # The two estimates' disagreement is a measure of what the error bar misses.
+            estimates.append((centre, float(np.hypot(stderr, 0.5 * (centre - lowest[0]))),
+                              "symmetry"))
         else:
             estimates.append((lowest[0], lowest[1], "minimum"))
     if not estimates:
@@ -631,7 +640,7 @@ def fit_gates(gate_maps, *, material="auto", field=None, thickness=(None, None),
         Planned top- and bottom-gate sweep limits (V); a warning is added when
         they would bring a dielectric near 1 V/nm.
     seed : int
-        Seed of the bootstrap over traces.
+        Seed of the bootstrap over lines and blocks of traces.
 
     Returns
     -------
