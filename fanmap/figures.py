@@ -364,14 +364,37 @@ def _place_top_labels(fig, ax, positions, texts, kinds):
     return artists
 
 
-def _place_side_labels(ax, points, texts, kinds):
-    """Labels inside the axes where a line leaves through the left or right edge."""
-    for (x, y, side), text, kind in zip(points, texts, kinds):
-        style = _style.kind_style(kind)
-        ax.annotate(text, (x, y), xytext=(-3 if side == "right" else 3, 0),
-                    textcoords="offset points", ha="right" if side == "right" else "left",
-                    va="center", fontsize=_style.FONT_SIZE - 1, color=style["color"],
-                    path_effects=_style.halo(2.2), clip_on=True)
+def _place_side_labels(fig, ax, points, texts, kinds):
+    """Labels inside the axes where a line leaves through the left or right edge.
+
+    Labels on one edge are spread vertically so that they do not overlap; a
+    label moved away from its line gets a short leader.
+    """
+    size = _style.FONT_SIZE - 1
+    box = ax.get_window_extent(fig.canvas.get_renderer())
+    step = 1.25 * size * fig.dpi / 72.0                      # label height in pixels
+    points_per_pixel = 72.0 / fig.dpi
+    for edge in ("left", "right"):
+        mine = [k for k, p in enumerate(points) if p[2] == edge]
+        if not mine:
+            continue
+        mine.sort(key=lambda k: points[k][1])
+        centres = np.array([ax.transData.transform((points[k][0], points[k][1]))[1]
+                            for k in mine])
+        placed = _spread(centres, np.full(len(mine), step), box.y0 + step / 2,
+                         box.y1 - step / 2, 0.0)
+        inward = 3 if edge == "left" else -3
+        for k, centre, spot in zip(mine, centres, placed):
+            x, y, _ = points[k]
+            style = _style.kind_style(kinds[k])
+            moved = abs(spot - centre) > 1.0
+            ax.annotate(texts[k], (x, y), xytext=(inward * (4 if moved else 1),
+                                                  (spot - centre) * points_per_pixel),
+                        textcoords="offset points", ha="left" if edge == "left" else "right",
+                        va="center", fontsize=size, color=style["color"],
+                        path_effects=_style.halo(2.2), annotation_clip=False,
+                        arrowprops={"arrowstyle": "-", "color": style["color"], "linewidth": 0.6,
+                                    "shrinkA": 0, "shrinkB": 0} if moved else None)
 
 
 def _label_lines(fig, ax, curves, texts, kinds):
@@ -397,7 +420,7 @@ def _label_lines(fig, ax, curves, texts, kinds):
     if top[0]:
         _place_top_labels(fig, ax, np.asarray(top[0]), top[1], top[2])
     if side[0]:
-        _place_side_labels(ax, side[0], side[1], side[2])
+        _place_side_labels(fig, ax, side[0], side[1], side[2])
 
 
 def _kind_legend(ax, kinds, extra=(), loc="lower right"):
@@ -492,7 +515,7 @@ def _fan_title(fan_map, result):
     v0 = result.zero_density_voltage
     if math.isfinite(v0):
         parts.append(f"V₀ = ({value_with_error(v0, result.zero_density_voltage_stderr)}) V")
-    if len(parts) == 3 and len(parts[0]) > 24:
+    if len(parts) == 3 and sum(map(len, parts)) > 64:
         return parts[0] + "\n" + "   ".join(parts[1:])
     return "   ".join(parts)
 
