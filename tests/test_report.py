@@ -262,3 +262,12 @@ def test_ambiguous_scale_lists_the_candidates(tmp_path):
     assert "more than one absolute scale" in text and "undetermined" in text
     assert "filling-factor and density maps are not drawn" in text
     assert page.count("<td>4</td>") >= 1 and "3.6 × 10" in text     # alpha / 2 = 3.6e14
+
+
+def test_text_from_files_and_fits_is_escaped():
+    ds, result = _small()
+    result.source = 'evil<script>alert("x")</script>.nc'
+    result.warnings = ["a <b>bold</b> & risky warning"]
+    page = R.render_fan_report(ds, result, [], [])
+    assert "<script" not in page and "<b>bold</b>" not in page
+    assert "&lt;script&gt;" in page and "a &lt;b&gt;bold&lt;/b&gt; &amp; risky warning" in page
