@@ -526,6 +526,39 @@ def _ridge_envelope(arrays, q, k, reach=3, smooth=9):
     return vb, envelope
 
 
+def _bottom_only_ridge(maps, q):
+    """V_b of a resistance ridge at constant bottom-gate voltage (zero-field maps), or None.
+
+    What the channel's constant-density lines explain is removed first; the
+    rest, averaged over the top gate, is a function of V_b alone whose clear
+    maximum marks the neutrality of regions gated by the bottom gate only.
+    """
+    found = []
+    for m in maps:
+        if m["mode"] != "neutrality":
+            continue
+        a = m["arrays"]
+        z = ridges.log_signal(a["rxx"])
+        u, p, _, _ = ridges.profile(z, a["top"], a["bottom"], q)
+        channel = np.interp(a["top"][None, :] + q * a["bottom"][:, None], u, p)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            rest = np.nanmedian(z - channel, axis=1)
+        if np.sum(np.isfinite(rest)) < 15:
+            continue
+        rest = np.where(np.isfinite(rest), rest, np.nanmedian(rest))
+        noise = 1.4826 * np.median(np.abs(np.diff(rest))) / np.sqrt(2) + 1e-12
+        peaks, props = signal.find_peaks(rest, prominence=max(8 * noise, 0.1))
+        if peaks.size != 1:
+            continue        # none, or several: not one clear ridge
+        position = float(_vertex(a["bottom"], rest, peaks)[0])
+        found.append((position, abs(a["bottom"][1] - a["bottom"][0]) / 2))
+    if not found:
+        return None
+    values = np.array([f[0] for f in found])
+    return float(values.mean()), float(max(f[1] for f in found) / np.sqrt(len(found)))
+
+
 def _neutral_point(maps, q, k):
     """Bottom-gate voltage of the neutral point where R at neutrality is even in D."""
     estimates = []
@@ -723,6 +756,14 @@ def fit_gates(gate_maps, *, material="auto", field=None, thickness=(None, None),
         if centre is not None and centre[2] == "minimum":
             warnings.append("the resistance along neutrality is not even in D: D = 0 is taken at "
                             "its minimum (where a layer-polarisation gap closes); check the offsets")
+        leads = _bottom_only_ridge(maps, q) if centre is None else None
+        if leads is not None:
+            centre = (*leads, "leads")
+            warnings.append(
+                "the resistance along neutrality shows no displacement-field signature; V_b0 is "
+                "taken from a ridge at constant bottom-gate voltage (regions such as the leads "
+                "that only the bottom gate reaches), which assumes they share the channel's "
+                "bottom-gate offset; V_t0 follows from the neutral line")
         if centre is None:
             ref = next(m for m in maps if _neutral_segment(m["arrays"], q, k).size) \
                 if any(_neutral_segment(m["arrays"], q, k).size for m in maps) else None
@@ -736,8 +777,9 @@ def fit_gates(gate_maps, *, material="auto", field=None, thickness=(None, None),
                             "the middle of the neutral line in the map, their errors its length")
             neutral_from = "middle of neutral line"
         else:
-            neutral_from = ("symmetry of R(D) at neutrality" if centre[2] == "symmetry"
-                            else "minimum of R(D) at neutrality")
+            neutral_from = {"symmetry": "symmetry of R(D) at neutrality",
+                            "minimum": "minimum of R(D) at neutrality",
+                            "leads": "bottom-gate-only ridge"}[centre[2]]
         bot_off, bot_off_err = centre[:2]
         top_off = k - q * bot_off
         top_off_err = np.sqrt(var_k + bot_off**2 * var_q - 2 * bot_off * cov_qk

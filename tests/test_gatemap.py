@@ -235,18 +235,29 @@ def test_simulated_sio2_stack_against_parallel_plate():
 
 
 @pytest.mark.slow
-def test_simulated_monolayer_offsets_are_flagged_undetermined():
-    # Monolayer graphene has no gap that opens with D: the data fix only C_t V_t0 + C_b V_b0.
+def test_simulated_monolayer_offsets_from_the_bottom_gate_only_ridge():
+    # Monolayer graphene has no gap that opens with D; the simulated leads, reached by the
+    # bottom gate alone, show a ridge at V_b = V_b0 that places the neutral point.
     maps = _simulated("graphene-monolayer", fields=(0.0, 8.0))
     c_t, c_b, v_t0, v_b0 = _truth(maps[0])
     result = fit_gates(maps)
     assert result.top_capacitance == pytest.approx(c_t, rel=5e-3)
+    assert result.extras["neutral_point_from"] == "bottom-gate-only ridge"
+    assert any("share the channel's bottom-gate offset" in w for w in result.warnings)
+    assert abs(result.top_offset - v_t0) < 0.005 * float(np.ptp(maps[0].top_gate.values))
+    assert abs(result.bottom_offset - v_b0) < 0.005 * float(np.ptp(maps[0].bottom_gate.values))
+
+
+def test_offsets_without_any_displacement_signature_are_flagged():
+    # R at neutrality independent of D (gap_scale huge) and no single-gate ridge: only the
+    # neutral line C_t V_t0 + C_b V_b0 is measured.
+    result = fit_gates(hand_built_map(field=0.0, gap_scale=1e30))
     assert result.extras["neutral_point_from"] == "middle of neutral line"
     assert any("only C_t V_t0 + C_b V_b0 is measured" in w for w in result.warnings)
-    # What is measured is right: the neutral line.
-    assert result.top_offset + result.bottom_offset * c_b / c_t == pytest.approx(
-        v_t0 + v_b0 * c_b / c_t, abs=0.01)
-    assert result.bottom_offset_stderr > 0.1 * float(np.ptp(maps[0].bottom_gate.values))
+    q = TRUTH["c_bottom"] / TRUTH["c_top"]
+    assert result.top_offset + q * result.bottom_offset == pytest.approx(
+        TRUTH["top_offset"] + q * TRUTH["bottom_offset"], abs=0.01)
+    assert result.bottom_offset_stderr > 5.0
 
 
 # --- cautions ----------------------------------------------------------------------------
