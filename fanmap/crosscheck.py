@@ -39,7 +39,7 @@ from scipy import optimize
 from . import _oscillations as osc
 from . import physics as ph
 from ._linefit import fit_line, fit_line_clipped, fit_v_shape
-from ._schema import FIELD, GATE, RXX, RXY
+from ._schema import FIELD, GATE, RXX, RXY, SWEEP_DIRECTION
 from .errors import InputError
 from .materials import get_material
 
@@ -50,13 +50,14 @@ __all__ = [
     "compare_calibrations", "run_crosschecks",
 ]
 
-#: Relative systematic error of an oscillation frequency, common to all gate voltages.  When
-#: the waveform sharpens into the quantum Hall regime along a trace, the phase of its
-#: fundamental drifts and the spectral peak moves: on the project's simulated fans with
-#: 0.056 T field steps (minima at exact fillings) by 0.01-0.06 % for graphene mono- and
-#: bilayers and up to 0.3 % for a GaAs 2DEG with few resolved periods.  Window changes do
-#: not reveal it, so it is added to the lever arm's error.
-FREQUENCY_SYSTEMATIC = 3e-3
+#: Systematic error of an oscillation frequency, in units of its Rayleigh resolution
+#: 1 / (1/B_min - 1/B_max), treated as common to all gate voltages.  When the waveform
+#: sharpens into the quantum Hall regime or splits along a trace, the phase of its
+#: fundamental drifts and the spectral peak moves by a fraction of the resolution; window
+#: changes do not reveal it.  Measured on the shipped simulated fans (minima at exact
+#: fillings): median 0.005-0.007 resolutions for graphene mono- and bilayers, 0.033 (90 %:
+#: 0.07) for the spin-split GaAs 2DEG; 0.04 covers the bulk of them.
+FREQUENCY_SYSTEMATIC = 0.04
 
 #: Relative deviation from n = alpha (V - V0) tolerated at the edge of the neutrality gap.
 HALL_LINEARITY = 1e-3
@@ -137,6 +138,37 @@ def _traces(fan_map, name, *, odd=False):
         out = sums / counts
     order = np.argsort(gate)
     return key, gate[order], out[:, order]
+
+
+def _up_sweeps_only(fan_map):
+    """The map's up sweeps when both sweep directions are present (hysteresis), and a note.
+
+    Interleaved up and down sweeps shifted by a hysteresis would put a zigzag
+    into every R(B) trace at fixed gate voltage.  A coordinate
+    ``acquisition_row`` (0 ... rows-1, acquisition order) is added either way,
+    for referring V0 to the time of the rows used.
+    """
+    rows = fan_map.sizes[FIELD]
+    fan_map = fan_map.assign_coords(acquisition_row=(FIELD, np.arange(rows)))
+    if SWEEP_DIRECTION not in fan_map.coords:
+        return fan_map, None
+    direction = np.asarray(fan_map[SWEEP_DIRECTION].values)
+    if not ((direction > 0).any() and (direction < 0).any()):
+        return fan_map, None
+    note = (f"sweep directions alternate: the cross-checks use the {int((direction > 0).sum())} "
+            "up sweeps only (a hysteresis between directions would mix two fans)")
+    return fan_map.isel({FIELD: np.flatnonzero(direction > 0)}), note
+
+
+def _mean_row_position(fan_map, lo, hi):
+    """Mean acquisition position r/(R-1) in [0, 1] of the rows with lo <= |B| <= hi."""
+    if "acquisition_row" not in fan_map.coords or not np.all(np.isfinite([lo, hi])):
+        return float("nan")
+    rows = np.asarray(fan_map["acquisition_row"].values, dtype=float)
+    field = np.abs(np.asarray(fan_map[FIELD].values, dtype=float))
+    inside = (field >= lo) & (field <= hi)
+    total = max(float(rows.max()), 1.0)
+    return float(np.mean(rows[inside]) / total) if inside.any() else float("nan")
 
 
 def _field_step(fields):
@@ -272,32 +304,45 @@ def _two_carrier_mask(gates, density, exclusion_factor):
     1/(n e) turns over and changes sign instead of diverging.  The turning
     points of |R_H| on either side of the sign change mark the two-carrier
     region; points with |n_H| below ``exclusion_factor`` times the larger
-    turning-point density are excluded.
+    turning-point density are excluded.  Returns ``(keep, floor, note)``.
     """
     ok = np.isfinite(density)
     coeff = np.where(ok, 1.0 / density, np.nan)
     idx = np.flatnonzero(ok)
     keep = ok.copy()
+    note = None
     if idx.size < 3:
-        return keep, None
+        return keep, None, note
     signs = np.sign(coeff[idx])
-    flips = np.flatnonzero(signs[1:] != signs[:-1])
+    # Neutrality: a change from holes to electrons with rising gate voltage (a band edge
+    # of a superlattice flips the other way first); of several, the one with the longest
+    # single-band flanks, where |n_H| keeps growing away from it.
+    flips = np.flatnonzero((signs[:-1] < 0) & (signs[1:] > 0))
+    if flips.size == 0:
+        flips = np.flatnonzero(signs[1:] != signs[:-1])
     magnitude = np.abs(coeff[idx])
     if flips.size:
-        # The sign change next to the strongest Hall coefficient is neutrality.
-        peak = np.argmax(magnitude)
-        flip = flips[np.argmin(np.abs(flips + 0.5 - peak))]
-        left, right = idx[: flip + 1], idx[flip + 1:]
+        spans = [_single_band_span(np.abs(density[idx]), f) for f in flips]
+        best = int(np.argmax([hi - lo for lo, hi in spans]))
+        flip, (first, last) = flips[best], spans[best]
+        keep[idx[:first]] = False
+        keep[idx[last + 1:]] = False
+        if flips.size > 1:
+            note = (
+                f"Hall: the Hall density changes from holes to electrons {flips.size} times "
+                f"(superlattice band edges?); the one at {gates[idx[flip]]:.3g} V was taken as "
+                "neutrality and may be a band edge: compare V0 with the fan fit")
+        left, right = idx[first: flip + 1], idx[flip + 1: last + 1]
         turning = [side[np.argmax(np.abs(coeff[side]))] for side in (left, right) if side.size]
     else:
         peak = int(np.argmax(magnitude))
         if peak in (0, idx.size - 1):
-            return keep, None           # monotonic: neutrality outside the gate range
+            return keep, None, note     # monotonic: neutrality outside the gate range
         turning = [idx[peak]]
     floor = max(abs(density[t]) for t in turning)
     lo, hi = min(gates[t] for t in turning), max(gates[t] for t in turning)
     keep &= (np.abs(density) >= exclusion_factor * floor) & ~((gates >= lo) & (gates <= hi))
-    return keep, floor
+    return keep, floor, note
 
 
 def _fit_single_carrier(gates, density, sigma, keep, rounds=4):
@@ -333,6 +378,32 @@ def _fit_single_carrier(gates, density, sigma, keep, rounds=4):
     return fit, used
 
 
+def _single_band_span(magnitude, flip, drop=0.8):
+    """Index range around a sign change over which |n_H| keeps growing away from it.
+
+    Walking outwards from the sign change between ``flip`` and ``flip + 1``,
+    each side first passes the two-carrier dip (|n_H| falls from its divergence
+    at the sign change to the turning point), then ends where |n_H| falls below
+    ``drop`` times its largest value so far (a van Hove singularity or band
+    edge: the Hall density turns over and changes sign again).  Returns
+    ``(first, last)`` inclusive.
+    """
+    def walk(steps):
+        steps = list(steps)
+        k = 0
+        while k + 1 < len(steps) and magnitude[steps[k + 1]] <= magnitude[steps[k]]:
+            k += 1                                  # the two-carrier dip
+        end, top = steps[k], magnitude[steps[k]]
+        for i in steps[k:]:
+            if magnitude[i] < drop * top:
+                break
+            top = max(top, magnitude[i])
+            end = i
+        return end
+
+    return walk(range(flip, -1, -1)), walk(range(flip + 1, magnitude.size))
+
+
 def hall_calibration(fan_map, *, field_window=None, geometry_factor=None,
                      exclusion_factor=4.0, linearity_tolerance=0.01):
     """Lever arm and zero-density voltage from the Hall density, and the mobility.
@@ -357,7 +428,9 @@ def hall_calibration(fan_map, *, field_window=None, geometry_factor=None,
     hall = hall_density(fan_map, field_window=field_window,
                         linearity_tolerance=linearity_tolerance)
     gates, density = hall["gate"], hall["density"]
-    keep, floor = _two_carrier_mask(gates, density, exclusion_factor)
+    keep, floor, note = _two_carrier_mask(gates, density, exclusion_factor)
+    if note:
+        warnings.append(note)
     if floor is not None:
         dropped = int(np.sum(np.isfinite(density) & ~keep))
         warnings.append(
@@ -565,6 +638,7 @@ def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
     freq = np.full(gates.size, np.nan)
     resolution = np.full(gates.size, np.nan)
     freq_err = np.full(gates.size, np.nan)
+    window = np.full((gates.size, 2), np.nan)
     reasons = {}
     for j in range(gates.size):
         found, why = _gate_frequency(fields, sigma[:, j], step, field_range=field_range,
@@ -573,8 +647,10 @@ def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
             reasons[why] = reasons.get(why, 0) + 1
             continue
         freq[j], resolution[j] = found["frequency"], found["resolution"]
+        window[j] = found["field_min"], found["field_max"]
         # The systematic part is also a per-gate error: how much of it is common is unknown.
-        freq_err[j] = math.hypot(found["frequency_stderr"], FREQUENCY_SYSTEMATIC * found["frequency"])
+        freq_err[j] = math.hypot(found["frequency_stderr"],
+                                 FREQUENCY_SYSTEMATIC * found["resolution"])
     warnings = [f"oscillations: no frequency at {count} gate voltages ({why})"
                 for why, count in reasons.items()]
     fit, signs, used = _fit_v_clipped(gates, freq, freq_err)
@@ -591,7 +667,7 @@ def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
                                        points_per_period=points_per_period,
                                        min_cycles=min_cycles, near=expected[j])
             freq[j], freq_err[j] = ((found["frequency"], math.hypot(
-                found["frequency_stderr"], FREQUENCY_SYSTEMATIC * found["frequency"]))
+                found["frequency_stderr"], FREQUENCY_SYSTEMATIC * found["resolution"]))
                 if found else (np.nan, np.nan))
         if off.any():
             warnings.append(f"oscillations: at {int(off.sum())} gate voltages the strongest peak "
@@ -604,16 +680,19 @@ def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
     # Correlated over gate voltages, so not averaged down by the fit: see FREQUENCY_SYSTEMATIC.
     # A common frequency offset cancels between the branches of an ambipolar fan but moves
     # the extrapolated V0 of a one-sided one by offset / slope.
-    slope_stderr = math.hypot(fit.slope_stderr, FREQUENCY_SYSTEMATIC * fit.slope)
+    systematic = FREQUENCY_SYSTEMATIC * np.nanmedian((resolution / freq)[used]) if used.any() \
+        else float("nan")
+    slope_stderr = math.hypot(fit.slope_stderr, systematic * fit.slope)
     v0_stderr = fit.root_stderr
     if np.unique(signs[used]).size == 1:
-        v0_stderr = math.hypot(v0_stderr, FREQUENCY_SYSTEMATIC * np.nanmean(freq[used])
-                               / fit.slope)
+        v0_stderr = math.hypot(v0_stderr, systematic * np.nanmean(freq[used]) / fit.slope)
     result = {
         "frequency_per_volt": fit.slope,
         "frequency_per_volt_stderr": slope_stderr,
         "frequency_per_volt_statistical_stderr": fit.slope_stderr,
         "frequency_intercept": fit.intercept,
+        "field_range": [float(np.nanmedian(window[used, 0])), float(np.nanmedian(window[used, 1]))]
+        if used.any() else [float("nan"), float("nan")],
         "signs": signs,
         "zero_density_voltage": fit.root,
         "zero_density_voltage_stderr": v0_stderr,
@@ -642,20 +721,28 @@ def _apply_degeneracy(result, degeneracy):
         result["density"] = np.full(result["frequency"].shape, np.nan)
 
 
-def _fit_v_clipped(x, y, sigma, clip=4.0, rounds=3):
-    """:func:`fit_v_shape` (absolute errors) with rejection beyond ``clip`` robust sigmas."""
+def _fit_v_clipped(x, y, sigma, clip=4.0, rounds=5):
+    """:func:`fit_v_shape` (absolute errors) after rejecting points beyond ``clip`` robust sigmas.
+
+    The rejection runs on relative residuals |y - line| / y of fits with equal
+    relative weights, not on the stated errors: a peak of the wrong origin (a
+    spike train, a beat) can carry a small error when its windows happen to
+    agree, and would pull a weighted fit.  The final fit uses ``sigma``.
+    """
     kept = np.isfinite(x) & np.isfinite(y) & np.isfinite(sigma)
-    fit, signs = fit_v_shape(np.where(kept, x, np.nan), y, sigma, absolute_sigma=True)
+    relative = np.abs(y)
+    fit, signs = fit_v_shape(np.where(kept, x, np.nan), y, relative)
     for _ in range(rounds):
         if not np.isfinite(fit.slope) or kept.sum() < 5:
             break
-        resid = (signs * np.abs(y) - fit.intercept - fit.slope * x) / sigma
+        resid = (signs * np.abs(y) - fit.intercept - fit.slope * x) / relative
         spread = 1.4826 * np.median(np.abs(resid[kept]))
         new = kept & (np.abs(resid) <= clip * spread) if spread > 0 else kept
         if new.sum() == kept.sum() or new.sum() < 3:
             break
         kept = new
-        fit, signs = fit_v_shape(np.where(kept, x, np.nan), y, sigma, absolute_sigma=True)
+        fit, signs = fit_v_shape(np.where(kept, x, np.nan), y, relative)
+    fit, signs = fit_v_shape(np.where(kept, x, np.nan), y, sigma, absolute_sigma=True)
     return fit, signs, kept
 
 
@@ -1185,6 +1272,7 @@ def run_crosschecks(fan_map, fan_result=None, *, degeneracy=None, material="auto
     if fan_result is not None and material == "auto" and fan_result.material:
         material = fan_result.material
     get_material(material)          # unknown names fail before any work
+    fan_map, sweep_note = _up_sweeps_only(fan_map)
     nan = float("nan")
     out = {
         "hall_density_per_volt": nan, "hall_density_per_volt_stderr": nan,
@@ -1197,7 +1285,7 @@ def run_crosschecks(fan_map, fan_result=None, *, degeneracy=None, material="auto
         "mobility": nan, "geometry_factor": geometry_factor,
         "material": material,
     }
-    warnings = []
+    warnings = [sweep_note] if sweep_note else []
 
     hall = None
     try:
@@ -1303,6 +1391,7 @@ def run_crosschecks(fan_map, fan_result=None, *, degeneracy=None, material="auto
         except InputError as exc:
             warnings.append(f"quantum lifetime not measured: {exc}")
 
+    _refer_to_first_row(out, fan_map, fan_result, hall, oscill, warnings)
     estimates = []
     if fan_result is not None:
         estimates.append({
@@ -1330,6 +1419,32 @@ def run_crosschecks(fan_map, fan_result=None, *, degeneracy=None, material="auto
     out["threshold_sigma"] = threshold
     out["warnings"] = warnings
     return out
+
+
+def _refer_to_first_row(out, fan_map, fan_result, hall, oscill, warnings):
+    """Refer the Hall and oscillation V0 to the fan fit's reference row, in place.
+
+    The fan fit reports V0 of the first row swept up and, when it finds them, a
+    linear drift over the map and a hysteresis shift of the down sweeps.  Each
+    check measures V0 at the mean acquisition time of the rows it used; with
+    the fan's drift the two become comparable.  The values as measured stay
+    under ``*_zero_density_voltage_at_rows`` with the mean row position.
+    """
+    extras = (fan_result.extras or {}) if fan_result is not None else {}
+    drift = extras.get("zero_density_voltage_drift")
+    for name, result in (("hall", hall), ("oscillation", oscill)):
+        if result is None:
+            continue
+        lo, hi = result["field_range"] if name == "oscillation" else result["field_window"]
+        position = _mean_row_position(fan_map, lo, hi)
+        key = f"{name}_zero_density_voltage"
+        out[f"{key}_at_rows"] = out[key]
+        out[f"{name}_row_position"] = position
+        if drift is not None and np.isfinite(drift) and np.isfinite(position) and drift != 0:
+            out[key] = out[key] - drift * position
+            warnings.append(f"{name}: V0 measured at mean row position {position:.2f} of the map "
+                            f"is referred to the first row with the fan fit's drift "
+                            f"{drift:+.3g} V over the map")
 
 
 def _degeneracy_ratio(hall, oscill):

@@ -142,17 +142,17 @@ def test_oscillation_lever_arm_within_stated_error(noise):
     # Truth within 3 stated standard errors.
     assert abs(o["density_per_volt"] - 1e15) < 3 * o["density_per_volt_stderr"]
     assert abs(o["zero_density_voltage"] + 2.0) < 3 * o["zero_density_voltage_stderr"]
-    # The stated error is the statistical one plus the 0.3 % systematic, not more.
-    assert o["density_per_volt_stderr"] < 5e-3 * 1e15
+    # The stated error (statistical plus systematic) stays useful: below 1 %.
+    assert o["density_per_volt_stderr"] < 1e-2 * 1e15
 
 
 def test_frequency_systematic_covers_exact_traces():
-    # The relative systematic FREQUENCY_SYSTEMATIC covers the bias of the spectral peak on
-    # exact, noise-free LK traces with strong and weak damping, gate by gate.
+    # The systematic FREQUENCY_SYSTEMATIC (in Rayleigh resolutions) covers the bias of the
+    # spectral peak on exact, noise-free LK traces with strong and weak damping, gate by gate.
     for dingle in (1.0, 3.0):
         o = cc.oscillation_calibration(lk_fan_map(dingle=dingle), degeneracy=2)
         bf = 1e15 * (o["gate"] + 2.0) * C.h / (2 * C.e)        # Onsager
-        bias = np.abs(o["frequency"] - bf) / bf
+        bias = np.abs(o["frequency"] - bf) / o["frequency_resolution"]
         assert np.nanmax(bias) < cc.FREQUENCY_SYSTEMATIC
         assert np.all(np.abs(o["frequency"] - bf)[o["used"]] < 3 * o["frequency_stderr"][o["used"]])
 
