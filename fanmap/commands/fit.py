@@ -32,6 +32,9 @@ def register(subparsers):
                         help="relative permittivity of the gate dielectric")
     parser.add_argument("--bootstrap", metavar="N", type=int, default=200,
                         help="bootstrap resamples over ridge traces (default 200, 0: none)")
+    parser.add_argument("--check", action="store_true",
+                        help="also run the Hall, oscillation and index-plot cross-checks "
+                             "(as `fanmap check`) and store them in the result")
     add_reading_options(parser)
     parser.set_defaults(run=run)
     return parser
@@ -92,6 +95,10 @@ def run(args):
     fan_map = open_from_args(args)
     result = fit_fan(fan_map, material=args.material, dielectric=dielectric,
                      bootstrap=args.bootstrap)
+    if args.check:
+        from ..crosscheck import run_crosschecks
+
+        result.crosschecks = run_crosschecks(fan_map, result, material=args.material)
     if args.out:
         from ..report import write_fan_outputs
 
@@ -99,6 +106,11 @@ def run(args):
     if args.json:
         write_text_atomic(args.json, dumps(result))
     print(summary(result))
+    if result.crosschecks is not None:
+        from .check import summary as check_summary
+
+        print("")
+        print(check_summary(result.crosschecks))
     print("")
     print(CAUTIONS[0])
     return 0
