@@ -429,6 +429,25 @@ def merge_directions(ds, *, align=True):
 
 # --- Onsager symmetrisation --------------------------------------------------------
 
+def _pair_lags(pos_rows, neg_rows, n_gate):
+    """Sub-pixel lag of each -B row against its +B row (0 where a row is too empty to tell)."""
+    max_lag = max(1, n_gate // 8)
+    lags = np.zeros(len(pos_rows))
+    for k, (pos, neg) in enumerate(zip(pos_rows, neg_rows)):
+        a = _normalised_derivative(pos)
+        b = _normalised_derivative(neg)
+        if a is not None and b is not None:
+            lags[k] = _row_lag(a, b, max_lag)[0]
+    return lags
+
+
+def _mixing_fraction(anti_xx, anti_xy):
+    """Least-squares fraction c in R_xx,odd = c R_xy,odd (the contact mixing)."""
+    ok = np.isfinite(anti_xx) & np.isfinite(anti_xy)
+    denom = float(np.sum(anti_xy[ok] ** 2))
+    return float(np.sum(anti_xx[ok] * anti_xy[ok]) / denom) if denom > 0 else float("nan")
+
+
 def _consensus_offsets(offsets, separation, hysteresis_sign, step):
     """Smooth per-pair gate offsets with a model: drift linear in the time between the two rows,
     plus a hysteresis shift where the rows were swept in opposite directions.
@@ -503,17 +522,24 @@ def symmetrise(ds, *, keep="positive", align=True):
         # moves every feature; re-sample the -B row onto the +B row before combining
         gate = ds[S.GATE].values.astype(float)
         step = _step(gate)
-        max_lag = max(1, min(gate.size // 8, gate.size // 2))
-        offsets = np.zeros(pos_pairs.size)
-        for k, i in enumerate(pos_pairs):
-            a = _normalised_derivative(rxx[i])
-            b = _normalised_derivative(neg_xx[k])
-            if a is not None and b is not None:
-                offsets[k] = _row_lag(a, b, max_lag)[0] * step
         # +1 where the +B row went up and the -B row down: down(V) = up(V - shift)
         hysteresis_sign = (direction[pos_pairs] - direction[partner[pos_pairs]]) / 2
-        offsets = _consensus_offsets(offsets, pos_pairs - partner[pos_pairs], hysteresis_sign, step)
-        neg_xx = _shift_rows(neg_xx, gate, offsets)
+        separation = pos_pairs - partner[pos_pairs]
+        mixing = 0.0
+        # the mixed-in R_xy is odd in B and would bias the alignment: estimate the shifts on
+        # R_xx - c R_xy, then c from the aligned rows, and repeat
+        for _ in range(4 if rxy is not None else 1):
+            pos_clean = rxx[pos_pairs] - (mixing * rxy[pos_pairs] if rxy is not None else 0.0)
+            neg_clean = rxx[partner[pos_pairs]] - (mixing * neg_xy if rxy is not None else 0.0)
+            offsets = _consensus_offsets(_pair_lags(pos_clean, neg_clean, gate.size) * step,
+                                         separation, hysteresis_sign, step)
+            neg_xx = _shift_rows(rxx[partner[pos_pairs]], gate, offsets)
+            if rxy is None:
+                break
+            shifted_xy = _shift_rows(neg_xy, gate, offsets)
+            mixing = _mixing_fraction((rxx[pos_pairs] - neg_xx) / 2, (rxy[pos_pairs] - shifted_xy) / 2)
+            if not np.isfinite(mixing):
+                mixing = 0.0
         if neg_xy is not None:
             neg_xy = _shift_rows(neg_xy, gate, offsets)
         notes["pair_shift_median"] = float(np.median(offsets))
@@ -531,9 +557,7 @@ def symmetrise(ds, *, keep="positive", align=True):
         new_xy[pos_pairs] = anti_xy
         new_xy[partner[pos_pairs]] = -anti_xy
         new_xy[zero] = 0.0
-        ok = np.isfinite(anti_xx) & np.isfinite(anti_xy)
-        denom = float(np.sum(anti_xy[ok] ** 2))
-        notes["contact_mixing"] = float(np.sum(anti_xx[ok] * anti_xy[ok]) / denom) if denom > 0 else float("nan")
+        notes["contact_mixing"] = _mixing_fraction(anti_xx, anti_xy)
         with _quiet():
             notes["rxy_symmetric_fraction"] = float(np.sqrt(np.nanmean(sym_xy**2) / np.nanmean(anti_xy**2)))
     unpaired = np.flatnonzero((partner < 0) & ~zero)
