@@ -33,3 +33,10 @@ class FanmapAccessor:
         from .gatemap import fit_gates
 
         return fit_gates([self._ds, *others], **options)
+
+    def check(self, fan_result=None, **options):
+        """Hall, oscillation and index-plot cross-checks of this fan map (and ``fan_result``);
+        see :func:`fanmap.crosscheck.run_crosschecks` for the options."""
+        from .crosscheck import run_crosschecks
+
+        return run_crosschecks(self._ds, fan_result, **options)
