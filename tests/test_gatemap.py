@@ -371,6 +371,19 @@ def test_fixed_field_map_without_minima_is_a_clear_error():
         fit_gates(gate_map)
 
 
+def test_uneven_gate_steps_and_nan_gaps_are_handled():
+    gate_map = hand_built_map(field=0.0)
+    # Jittered top-gate set points (up to 20 % of a step) and two lost sweeps.
+    rng = np.random.default_rng(3)
+    step = float(gate_map.top_gate[1] - gate_map.top_gate[0])
+    jitter = gate_map.top_gate.values + 0.2 * step * rng.uniform(-1, 1, gate_map.top_gate.size)
+    jittered = gate_map.assign_coords(top_gate=("top_gate", jitter, {"units": "V"}))
+    jittered["rxx"][10:12] = np.nan
+    result = fit_gates(jittered)
+    assert result.capacitance_ratio == pytest.approx(12.0, rel=3e-3)
+    assert_offsets(result)
+
+
 def test_wrong_dimensions_and_units():
     gate_map = hand_built_map(field=0.0)
     with pytest.raises(InputError, match="--top-gate"):
