@@ -410,7 +410,7 @@ def _design(maps, use_scale):
                 x[:, col] = 1.0
             col += 1
         if use_scale:
-            x[:, col] = nu * m["field"] * _QUANTUM
+            x[:, col] = nu * abs(m["field"]) * _QUANTUM
             col += 1
         if i in relative:
             x[:, col + relative.index(i)] = 1.0

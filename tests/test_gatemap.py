@@ -123,6 +123,13 @@ def test_joint_fit_capacitances_from_hall_plateaus():
     json.dumps(result.to_dict(), allow_nan=False)
 
 
+def test_negative_field_gives_the_same_calibration():
+    maps = [hand_built_map(field=0.0), hand_built_map(field=-8.0, seed=1)]
+    result = fit_gates(maps)
+    assert result.top_capacitance == pytest.approx(TRUTH["c_top"], rel=5e-3)
+    assert result.extras["maps"][1]["lines"][0]["filling"] == "-16"
+
+
 def test_fixed_field_only_with_material_preset():
     gate_map = hand_built_map(field=6.0, hall=False, seed=2)
     result = fit_gates(gate_map, material="graphene-bilayer")
