@@ -436,19 +436,20 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
         start = line["intercept"] + line["slope"] * line["field_min"]
         cut_by_window = min(abs(start - gate_lo), abs(start - gate_hi)) < 3 * step
         if np.ptp(b[line["members"]]) < max(min_span, 0 if cut_by_window else
-                                            0.3 * line["field_max"]):
+                                            0.4 * line["field_max"]):
             continue
         # a real line is resolved on most rows it crosses; crossings of other lines that
         # happen to align are sparse
         rows_spanned = np.sum((row_fields >= line["field_min"]) & (row_fields <= line["field_max"]))
         if line["points"] < 0.35 * rows_spanned:
             continue
-        slope_tol = max(0.1 + 0.02 * abs(t), 3 * line["slope_filling_stderr"])
+        # quantised slopes: a background valley drifts with a slope some 10 % off an integer
+        slope_tol = max(0.05 + 0.03 * abs(t), 3 * line["slope_filling_stderr"])
         if abs(line["slope_filling"] - t) > slope_tol or abs(line["intercept"] - scale.v0) < origin_tol:
             continue
         if line["rms"] > 0.6 * step:
             continue   # not straight: a background valley or a chain of crossings
-        if line["field_min"] < 0.25 * main_onset:
+        if np.percentile(b[line["members"]], 20) < 0.25 * main_onset:
             continue   # a minimum that persists to far below where any Landau level is
             # resolved is a valley between zero-field peaks, not a Landau gap
         line["t"] = t
@@ -626,8 +627,8 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes, main_origin_hi
                 notes.append(f"the outermost satellite family has {flavours // 2}-fold Landau "
                              f"levels, as at half filling, so it is taken as |s| = "
                              f"{flavours // 2}; full filling lies outside the gate window")
+    full = [h for h in shifted if h["full_sides"] == 2]
     if chosen is None:
-        full = [h for h in shifted if h["full_sides"] == 2]
         chosen = full[0] if full else None
     if chosen is None:
         chosen = pool[0]
@@ -728,6 +729,9 @@ def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
     joint = len(main_idx) > 0
     free = [0, 1, 2] if joint else [2]
     fixed = np.array([scale.v0 + lattice["origin_density"] / scale.alpha, 1.0 / scale.alpha, 0.0])
+    groups = _biweight(groups, free, fixed, scale.gate_step)
+    main_idx = [i for i, g in enumerate(groups) if g[0] == "main"]
+    sat_idx = [i for i, g in enumerate(groups) if g[0] == "satellite"]
     A_parts = [(g[1] * g[3][:, None]).T @ g[1] for g in groups]
     y_parts = [(g[1] * g[3][:, None]).T @ g[2] for g in groups]
 
@@ -780,6 +784,37 @@ def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
         result["cell_density_stderr"] = result["cell_density_bootstrap_stderr"]
         result["stderr_from"] = "bootstrap over lines"
     return result
+
+
+def _biweight(groups, free, fixed, gate_step, rounds=6):
+    """Tukey-biweight the points of the joint fit: bent line ends and stray points drop out."""
+    X = np.concatenate([g[1] for g in groups])
+    y = np.concatenate([g[2] for g in groups])
+    w = np.concatenate([g[3] for g in groups])
+    held = [k for k in range(3) if k not in free]
+    robust = np.ones(y.size)
+    for _ in range(rounds):
+        ww = w * robust
+        A = (X * ww[:, None]).T @ X
+        rhs = (X * ww[:, None]).T @ y
+        theta = fixed.copy()
+        try:
+            theta[free] = np.linalg.solve(A[np.ix_(free, free)],
+                                          rhs[free] - A[np.ix_(free, held)] @ fixed[held])
+        except np.linalg.LinAlgError:
+            return groups
+        resid = y - X @ theta
+        sigma = max(1.4826 * np.median(np.abs(resid - np.median(resid))), 0.1 * gate_step)
+        z = resid / (4.685 * sigma)
+        robust = np.where(np.abs(z) < 1, (1 - z**2) ** 2, 0.0)
+    out, start = [], 0
+    for kind, Xg, yg, wg in groups:
+        r = robust[start:start + yg.size]
+        start += yg.size
+        keep = r > 0
+        if keep.sum() >= 3:
+            out.append((kind, Xg[keep], yg[keep], wg[keep] * r[keep]))
+    return out
 
 
 def _filling_number(text):
@@ -880,18 +915,13 @@ def _log_resistance(rxx):
 def _zero_field_peaks(gate, fields, rxx, scale, n0, n0_sigma, flavours, lattice, lines, notes):
     """Resistance peaks of the lowest-field rows, away from neutrality, at band fillings."""
     absb = np.abs(fields)
-    low = absb <= absb.min() + max(0.02 * np.ptp(absb), 1e-9)
     if absb.min() > 0.5:
         notes.append(f"no zero-field row: band-filling peaks taken from the lowest field, "
                      f"{absb.min():.2f} T")
-    order = np.argsort(gate)
-    g = gate[order]
-    profile = np.nanmean(_log_resistance(rxx[low][:, order]), axis=0)
-    good = np.isfinite(profile)
-    if good.sum() < 8:
+    low_profile = _low_field_profile(gate, fields, rxx)
+    if low_profile is None:
         return []
-    profile = np.interp(g, g[good], profile[good])
-    smooth = ndimage.gaussian_filter1d(profile, 1.0)
+    g, profile, smooth, field_used = low_profile
     noise = 1.4826 * np.median(np.abs(np.diff(profile) - np.median(np.diff(profile)))) / np.sqrt(2)
     prominence = max(8 * noise, 0.02)
     idx, props = signal.find_peaks(smooth, prominence=prominence)
@@ -913,7 +943,7 @@ def _zero_field_peaks(gate, fields, rxx, scale, n0, n0_sigma, flavours, lattice,
         entry = {"gate": float(centre), "density": float(density), "band_filling": None,
                  "kind": "not at a band filling", "agrees_with_satellites": None,
                  "prominence_decades": float(prom), "half_width_density": float(half_width),
-                 "field": float(absb[low].mean())}
+                 "field": field_used}
         if n0 is not None:
             x = density / n0
             s = round(x)
@@ -943,6 +973,21 @@ def _zero_field_peaks(gate, fields, rxx, scale, n0, n0_sigma, flavours, lattice,
             notes.append("a zero-field peak lies beyond the outermost satellite family: "
                          "full filling may be higher than assumed")
     return peaks
+
+
+def _low_field_profile(gate, fields, rxx):
+    """(gate, log10 R, smoothed log10 R, field) of the lowest-field rows, sorted by gate."""
+    absb = np.abs(fields)
+    low = absb <= absb.min() + max(0.02 * np.ptp(absb), 1e-9)
+    order = np.argsort(gate)
+    g = gate[order]
+    with np.errstate(all="ignore"):
+        profile = np.nanmean(_log_resistance(rxx[low][:, order]), axis=0)
+    good = np.isfinite(profile)
+    if good.sum() < 8:
+        return None
+    profile = np.interp(g, g[good], profile[good])
+    return g, profile, ndimage.gaussian_filter1d(profile, 1.0), float(absb[low].mean())
 
 
 def _parabolic_offset(y, i):
