@@ -191,7 +191,8 @@ figcaption { font-size: 0.9rem; color: #444; }
 .meta { color: #555; font-size: 0.9rem; } .warn { background: #fff6df; border-left: 4px solid #c98a00;
         padding: 0.4rem 0.8rem; } .caution { background: #f3f3f3; border-left: 4px solid #555;
         padding: 0.4rem 0.8rem; } .ok { color: #2f6b2f; }
-nav.batch { margin: 0.4rem 0; } code { background: #f4f4f4; padding: 0 0.2rem; }
+nav.batch { margin: 0.4rem 0; } div.table { overflow-x: auto; max-width: 100%; }
+td { max-width: 28rem; overflow-wrap: break-word; } code { background: #f4f4f4; padding: 0 0.2rem; }
 @media print { figure { break-inside: avoid; } }
 """
 
@@ -229,8 +230,8 @@ def _table(header, rows, numeric=()):
         cells = "".join(f'<td class="num">{c}</td>' if i in numeric else f"<td>{c}</td>"
                         for i, c in enumerate(row))
         body.append(f"<tr>{cells}</tr>")
-    return f"<table>\n<thead><tr>{head}</tr></thead>\n<tbody>\n" + "\n".join(body) + \
-        "\n</tbody>\n</table>"
+    return (f'<div class="table"><table>\n<thead><tr>{head}</tr></thead>\n<tbody>\n'
+            + "\n".join(body) + "\n</tbody>\n</table></div>")
 
 
 def _page(title, body):
@@ -656,7 +657,7 @@ _INDEX_OTHER = ("material", "degeneracy", "berry_phase", "states", "scale_from",
                 "twist_angle_deg", "top_capacitance", "bottom_capacitance", "warnings")
 
 
-def write_batch_report(out_dir, table, pages):
+def write_batch_report(out_dir, table, pages, *, title=None):
     """Write ``index.html`` for a batch: the summary figure, the table and links to each map's page.
 
     Each linked map page gets a link back to the index (filled into the
@@ -676,6 +677,8 @@ def write_batch_report(out_dir, table, pages):
     pages : list or dict or None
         Each row's report page (path), aligned with the rows, or keyed by the
         row's ``name``/``map``/``source``.
+    title : str, optional
+        Heading of the page (e.g. the workflow's name); default "Batch".
 
     Returns
     -------
@@ -716,13 +719,14 @@ def write_batch_report(out_dir, table, pages):
     numeric = tuple(range(len(shown), len(shown) + 4))
     failed = sum(1 for r in rows if not _finite(r.get("density_per_volt")))
     when = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
-    body = [f"<h1>Batch: {len(rows)} map(s)</h1>",
+    heading = title or "Batch"
+    body = [f"<h1>{_esc(heading)}: {len(rows)} map(s)</h1>",
             f'<p class="meta">written {when} by fanmap {_esc(__version__)} · '
             f"{len(rows) - failed} fitted, {failed} without a fit</p>",
             '<h2 id="summary">Summary</h2>', _figure_html(figure),
             '<h2 id="maps">Maps</h2>', _table(header, html_rows, numeric=numeric),
             _cautions_html()]
-    index_html = _page("fanmap: batch index", "\n".join(body))
+    index_html = _page(f"fanmap: {heading}", "\n".join(body))
     # Back links are prepared in memory too, so nothing is written if a page is unreadable.
     updated = []
     for page in back_links:

@@ -209,8 +209,9 @@ def test_batch_table_as_columns(tmp_path):
     columns = {"device": ["A", "A"], "cooldown": ["1", "2"],
                "density_per_volt": [7e14, 7.1e14], "density_per_volt_stderr": [1e12, 1e12],
                "zero_density_voltage": [0.1, 0.3], "zero_density_voltage_stderr": [0.01, 0.01]}
-    index = R.write_batch_report(tmp_path, columns, None)
-    assert index.read_text(encoding="utf-8").count("<tr>") == 3
+    index = R.write_batch_report(tmp_path, columns, None, title="Cooldown 4 <north>")
+    page = index.read_text(encoding="utf-8")
+    assert page.count("<tr>") == 3 and "<h1>Cooldown 4 &lt;north&gt;: 2 map(s)</h1>" in page
     with pytest.raises(InputError, match="different lengths"):
         R.write_batch_report(tmp_path, {"device": ["A"], "cooldown": []}, None)
     with pytest.raises(InputError, match="empty"):
