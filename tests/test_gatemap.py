@@ -438,6 +438,20 @@ def test_gates_command_option_names_the_gates(tmp_path):
     assert json.loads(out_json.read_text())["capacitance_ratio"] == pytest.approx(12, rel=3e-3)
 
 
+def test_gates_command_fields_option(tmp_path, capsys):
+    paths = []
+    for i, field in enumerate((0.0, 8.0)):
+        path = tmp_path / f"nofield{i}.nc"
+        hand_built_map(field=field, seed=i).drop_vars("field").to_netcdf(path)
+        paths.append(str(path))
+    out_json = tmp_path / "r.json"
+    assert main(["gates", *paths, "--fields", "0", "8", "--json", str(out_json)]) == 0
+    data = json.loads(out_json.read_text())
+    assert data["top_capacitance"] == pytest.approx(TRUTH["c_top"], rel=5e-3)
+    assert main(["gates", *paths, "--fields", "8"]) == 2
+    assert "one per map" in capsys.readouterr().err
+
+
 @pytest.mark.slow
 def test_gates_command_writes_json_and_nd_netcdf(tmp_path, capsys):
     paths = _map_files(tmp_path)

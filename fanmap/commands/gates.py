@@ -45,6 +45,9 @@ def register(subparsers):
                         default=[HBN_PERMITTIVITY],
                         help="relative permittivity of the top [and bottom] dielectric "
                              f"(default {HBN_PERMITTIVITY}, hBN; SiO2 is 3.9)")
+    parser.add_argument("--fields", metavar="T", nargs="+", type=float,
+                        help="field of each map in T, in the order of the maps (overrides the "
+                             "files; --field-value gives one field for every map)")
     parser.add_argument("--gate-limits", metavar=("VT_MIN", "VT_MAX", "VB_MIN", "VB_MAX"),
                         nargs=4, type=float,
                         help="planned sweep limits (V): report the fields they put across each "
@@ -135,12 +138,15 @@ def _write_netcdf(path, dataset):
 
 def run(args):
     options = _options(args)
+    if args.fields is not None and len(args.fields) != len(args.maps):
+        raise InputError(f"--fields gives {len(args.fields)} fields for {len(args.maps)} maps; "
+                         "give one per map")
     maps = [open_from_args(args, path) for path in args.maps]
-    result = fit_gates(maps, material=args.material, **options)
+    result = fit_gates(maps, material=args.material, field=args.fields, **options)
     result.extras["settings"] = {"material": args.material, "maps": list(args.maps),
                                  "permittivity": list(options["permittivity"]),
                                  "dielectric_thickness_m": list(options["thickness"]),
-                                 "gate_limits_V": args.gate_limits}
+                                 "gate_limits_V": args.gate_limits, "fields_T": args.fields}
     nd_maps = _nd_maps(maps, result)
     print(summary(result))
     if nd_maps is None and args.out:
