@@ -156,22 +156,29 @@ def _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance
     """Whether each line holds clearly more minima than chance would put near it.
 
     Counted are the line's minima within ``band`` (V) of it.  Chance: in each row where
-    the line is inside the window and resolved, the row's minima density times the width
-    of that band.  A line needs at least twice the chance count, four standard deviations
+    the line is inside the window and resolved, within the field range its minima span,
+    the row's minima density times the width of that band.  A line needs at least twice the chance count, four standard deviations
     above it, and eight points.
     """
     n_rows = field.size
     density = np.bincount(minima.row, minlength=n_rows) / gate.size
     step = float(np.median(np.diff(gate)))
-    position = origin_rows[:, None] + slopes[None, :] * np.abs(field)[:, None]
-    inside = (position > gate[0]) & (position < gate[-1]) & resolved
-    width = 2 * np.minimum(band, tolerance) / step
-    expected = np.sum(inside * density[:, None] * width, axis=0)
     assigned = line >= 0
     offset = np.abs(minima.gate - origin_rows[minima.row]
                     - slopes[np.maximum(line, 0)] * minima.field)
     close = assigned & (offset < np.minimum(band, tolerance[minima.row, np.maximum(line, 0)]))
     observed = np.bincount(line[close], minlength=slopes.size)
+    # Chance is counted over the field range the line's own minima span.
+    b = np.abs(field)
+    lowest = np.full(slopes.size, np.inf)
+    highest = np.full(slopes.size, -np.inf)
+    np.minimum.at(lowest, line[close], minima.field[close])
+    np.maximum.at(highest, line[close], minima.field[close])
+    position = origin_rows[:, None] + slopes[None, :] * b[:, None]
+    inside = ((position > gate[0]) & (position < gate[-1]) & resolved
+              & (b[:, None] >= lowest[None, :]) & (b[:, None] <= highest[None, :]))
+    width = 2 * np.minimum(band, tolerance) / step
+    expected = np.sum(inside * density[:, None] * width, axis=0)
     return (observed >= _MIN_LINE_POINTS) & (observed >= 2 * expected) \
         & (observed >= expected + 4 * np.sqrt(expected))
 
@@ -208,18 +215,25 @@ def _link_by_direction(minima, direction, tolerance):
     minima.trace = trace
 
 
-def _best_origin(gate_pts, field_pts, votes, gate, bin_width):
-    """Zero-density voltage that makes the minima vote most sharply (coarse then fine scan).
+def _best_origins(gate_pts, field_pts, votes, gate, bin_width, count=3):
+    """Zero-density voltages that make the minima vote most sharply, strongest first.
 
-    The scan covers the gate window and one window width on either side, so an origin
-    outside the measured range (a 2DEG's depletion voltage) is found too.
+    A coarse scan over the gate window and one window width on either side (an origin
+    outside the measured range, a 2DEG's depletion voltage, is found too), then a fine
+    scan around each of the ``count`` highest local maxima of the score.
     """
     span = gate[-1] - gate[0]
     coarse = np.linspace(gate[0] - span, gate[-1] + span, 241)
-    best = coarse[np.argmax(vote_origin(gate_pts, field_pts, votes, coarse, bin_width))]
+    scores = vote_origin(gate_pts, field_pts, votes, coarse, bin_width)
+    peaks, _ = _find_peaks(np.r_[0.0, scores, 0.0])
+    peaks = peaks - 1
+    peaks = peaks[np.argsort(scores[peaks])[::-1][:count]]
     d = coarse[1] - coarse[0]
-    fine = np.linspace(best - 2 * d, best + 2 * d, 41)
-    return fine[np.argmax(vote_origin(gate_pts, field_pts, votes, fine, bin_width))]
+    found = []
+    for best in coarse[peaks]:
+        fine = np.linspace(best - 2 * d, best + 2 * d, 41)
+        found.append(fine[np.argmax(vote_origin(gate_pts, field_pts, votes, fine, bin_width))])
+    return np.asarray(found)
 
 
 def _merge_close(slopes, distance):
@@ -252,6 +266,56 @@ def _origin_of_rows(origin, names, n_rows, direction):
                                                        "hysteresis" in names)[0]):
         value = value + coef * col
     return value
+
+
+def _fit_lines(minima, origin_rows, votes, bin_width, field, gate, dir_rows, use_hysteresis):
+    """Lines through one trial origin: vote, assign, test, free fit (iterated).
+
+    Returns (slopes, line of each minimum, free fit, origin of each row, residual scale,
+    whether the drift term is used); raises NoFanError when fewer than two lines survive.
+    """
+    n_rows = field.size
+    step = float(np.median(np.diff(gate)))
+    b_max = np.abs(field).max()
+    min_votes = _MIN_LINE_POINTS * np.median(votes)
+    slopes = vote_slopes((minima.gate - origin_rows[minima.row]) / minima.field, votes,
+                         bin_width, min_votes)
+    # Lines of (nearly) zero slope stay at V0 at every field: the neutrality ridge, not a state.
+    slopes = slopes[np.abs(slopes) * b_max > 3 * step]
+    slopes = _merge_close(slopes, 4 * step / b_max)  # closer lines are unresolved
+    if slopes.size < 2:
+        raise NoFanError("fewer than two lines through a common origin were found; the map "
+                         "shows no Landau fan (or too few resolved states to fit one)")
+    residual_scale = step
+    free, use_drift = None, False
+    for iteration in range(6):
+        tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
+        line = _assign(minima, origin_rows, slopes, tolerance, resolved)
+        keep = _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance,
+                                  resolved, band=max(1.5 * step, 3 * residual_scale))
+        if keep.sum() < 2:
+            raise NoFanError("fewer than two fan lines have enough resolved minima to fit; "
+                             "the map shows no usable Landau fan")
+        if not keep.all():
+            slopes = slopes[keep]
+            continue
+        sel = line >= 0
+        # Drift along the row index is indistinguishable from a common slope when rows follow
+        # the field; then it is left to the final fit with fixed fillings.
+        rows_sel = minima.row[sel]
+        corr = abs(np.corrcoef(rows_sel, minima.field[sel])[0, 1]) if np.ptp(rows_sel) > 0 else 1
+        use_drift = n_rows >= 10 and corr < 0.98
+        cols, names = _nuisance_columns(minima.row, n_rows, dir_rows, use_drift, use_hysteresis)
+        free = _free_fit(minima, line, slopes.size, cols, names)
+        slopes = free["slopes"]
+        origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
+        good = free["weights"] > 0
+        residual_scale = 1.4826 * np.median(np.abs(free["resid"][good])) if good.any() else step
+        if iteration >= 2:
+            break
+    if free is None:
+        raise NoFanError("the fan lines could not be fitted; the map shows no usable Landau fan")
+    return slopes, line, free, origin_rows, residual_scale, use_drift
 
 
 # --- the fit ------------------------------------------------------------------------
@@ -326,54 +390,32 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     bin_width = 0.7 * step / b_ref
     dir_rows = direction if direction is not None else np.zeros(n_rows)
     # Each sweep direction votes for its own origin (hysteresis would split every line).
-    origin_rows = np.empty(n_rows)
+    best_rows = np.empty(n_rows)
+    candidates = None
     for sign in ((1, -1) if direction is not None else (0,)):
         rows_of_sign = dir_rows == sign if sign else np.ones(n_rows, bool)
         pts = rows_of_sign[minima.row]
         if pts.sum() < 2 * _MIN_LINE_POINTS:
             raise NoFanError("too few R_xx minima in one sweep direction to find the fan")
-        origin_rows[rows_of_sign] = _best_origin(minima.gate[pts], minima.field[pts], votes[pts],
-                                                 gate, bin_width)
-    min_votes = _MIN_LINE_POINTS * np.median(votes)
-    slopes = vote_slopes((minima.gate - origin_rows[minima.row]) / minima.field, votes,
-                         bin_width, min_votes)
-    # Lines of (nearly) zero slope stay at V0 at every field: the neutrality ridge, not a state.
-    slopes = slopes[np.abs(slopes) * b_abs.max() > 3 * step]
-    slopes = _merge_close(slopes, 4 * step / b_abs.max())  # closer lines are unresolved
-    if slopes.size < 2:
-        raise NoFanError("fewer than two lines through a common origin were found; the map "
-                         "shows no Landau fan (or too few resolved states to fit one)")
-
+        found = _best_origins(minima.gate[pts], minima.field[pts], votes[pts], gate, bin_width)
+        best_rows[rows_of_sign] = found[0]
+        candidates = found if candidates is None else candidates
+    # Several fans may compete (moire satellites): try the strongest few origins and keep the
+    # one whose lines hold the most minima.
+    fits, failure = [], None
+    for shift in candidates - candidates[0]:
+        try:
+            fits.append(_fit_lines(minima, best_rows + shift, votes, bin_width, field, gate,
+                                   dir_rows, direction is not None))
+        except NoFanError as exc:
+            failure = exc
+    if not fits:
+        raise failure
+    slopes, line, free, origin_rows, residual_scale, use_drift = max(
+        fits, key=lambda fit: int((fit[1] >= 0).sum()))
     use_hysteresis = direction is not None
-    residual_scale = step
     satellite = np.zeros(0, int)
-    line = np.full(len(minima), -1)
-    free = None
-    for iteration in range(6):
-        tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
-        line = _assign(minima, origin_rows, slopes, tolerance, resolved)
-        keep = _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance,
-                                  resolved, band=max(1.5 * step, 3 * residual_scale))
-        if keep.sum() < 2:
-            raise NoFanError("fewer than two fan lines have enough resolved minima to fit; "
-                             "the map shows no usable Landau fan")
-        if not keep.all():
-            slopes = slopes[keep]
-            continue
-        sel = line >= 0
-        # Drift along the row index is indistinguishable from a common slope when rows follow
-        # the field; then it is left to the final fit with fixed fillings.
-        rows_sel = minima.row[sel]
-        corr = abs(np.corrcoef(rows_sel, minima.field[sel])[0, 1]) if np.ptp(rows_sel) > 0 else 1
-        use_drift = n_rows >= 10 and corr < 0.98
-        cols, names = _nuisance_columns(minima.row, n_rows, dir_rows, use_drift, use_hysteresis)
-        free = _free_fit(minima, line, slopes.size, cols, names)
-        slopes = free["slopes"]
-        origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
-        good = free["weights"] > 0
-        residual_scale = 1.4826 * np.median(np.abs(free["resid"][good])) if good.any() else step
-        if iteration >= 2:
-            break
+    cols, names = _nuisance_columns(minima.row, n_rows, dir_rows, use_drift, use_hysteresis)
 
     # States too faint for the first pass: dips of the map averaged along lines through the
     # fitted origin, confirmed by a more sensitive pass of row minima.
