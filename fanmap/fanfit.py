@@ -28,7 +28,7 @@ from .physics import (ELEMENTARY_CHARGE, FLUX_QUANTUM_SINGLE_ELECTRON, HBAR, VON
                       lever_arm_from_dielectric)
 from .results import FanResult, State
 from .ridges import (Minima, filling_profile, find_row_minima, link_traces, log_signal,
-                     valley_strength, vote_origin, vote_slopes)
+                     trace_table, valley_strength, vote_origin, vote_slopes)
 
 __all__ = ["fit_fan"]
 
@@ -559,7 +559,8 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         scale_candidates=naming.candidates, warnings=warnings, material=material,
         extras=extras, source=fan_map.attrs.get("source"), version=__version__,
         ridge_points={"field": minima.field, "gate": minima.gate, "row": minima.row,
-                      "state": point_state, "weight": minima.weight, "trace": minima.trace},
+                      "state": point_state, "weight": minima.weight, "trace": minima.trace,
+                      "prominence": minima.prominence, "traces": trace_table(minima)},
     )
     if superlattice and material in ("moire-graphene", "auto"):
         _add_superlattice(fan_map, result, preset)

@@ -26,6 +26,7 @@ from scipy import ndimage, signal as _signal
 _LEVEL = 0.25  # height (fraction of prominence) where a wide dip's midpoint is taken
 
 __all__ = ["Minima", "log_signal", "valley_strength", "find_row_minima", "link_traces",
+           "trace_table",
            "vote_origin", "vote_slopes", "filling_profile"]
 
 
@@ -339,6 +340,41 @@ def link_traces(minima, tolerance, min_points=3):
     remap[good] = np.arange(good.size)
     minima.trace = remap[trace]
     return int(good.size)
+
+
+def trace_table(minima):
+    """One entry per ridge trace: its points, weights and field range.
+
+    Returns a dict of arrays indexed by trace number: ``points`` (count),
+    ``field_min``/``field_max`` (T), ``gate_first``/``gate_last`` (V, at the lowest and
+    highest field), ``weight`` (sum of the point weights) and ``prominence`` (median,
+    row-noise units).
+
+    Examples
+    --------
+    >>> m = Minima(row=np.array([0, 1, 2]), field=np.array([1., 2, 3]),
+    ...            gate=np.array([0.1, 0.2, 0.3]), depth=np.ones(3), prominence=np.full(3, 5.0),
+    ...            width=np.ones(3), valley=np.ones(3), weight=np.ones(3), trace=np.zeros(3, int))
+    >>> t = trace_table(m)
+    >>> t["points"].tolist(), t["field_max"].tolist(), t["gate_last"].tolist()
+    ([3], [3.0], [0.3])
+    """
+    labels = minima.trace
+    n = int(labels.max()) + 1 if labels.size and labels.max() >= 0 else 0
+    table = {"points": np.zeros(n, int), "field_min": np.full(n, np.nan),
+             "field_max": np.full(n, np.nan), "gate_first": np.full(n, np.nan),
+             "gate_last": np.full(n, np.nan), "weight": np.zeros(n), "prominence": np.zeros(n)}
+    for t in range(n):
+        pts = np.flatnonzero(labels == t)
+        if pts.size == 0:
+            continue
+        order = pts[np.argsort(minima.field[pts])]
+        table["points"][t] = pts.size
+        table["field_min"][t], table["field_max"][t] = minima.field[order[[0, -1]]]
+        table["gate_first"][t], table["gate_last"][t] = minima.gate[order[[0, -1]]]
+        table["weight"][t] = minima.weight[pts].sum()
+        table["prominence"][t] = np.median(minima.prominence[pts])
+    return table
 
 
 def _vote_histogram(slopes, votes, bin_width, lo, hi):

@@ -37,7 +37,11 @@ def test_monolayer_with_preset_recovers_exact_lever_arm_and_origin():
     assert r.density_offset == pytest.approx(-r.density_per_volt * r.zero_density_voltage)
     assert r.version == fanmap.__version__
     pts = r.ridge_points
-    assert set(pts) >= {"field", "gate", "state", "weight"} and (pts["state"] >= 0).sum() > 100
+    assert set(pts) >= {"field", "gate", "state", "weight", "traces"} and (pts["state"] >= 0).sum() > 100
+    # every ridge trace keeps its points, weight and field range
+    traces = pts["traces"]
+    assert traces["points"].sum() == (pts["trace"] >= 0).sum()
+    assert np.all(traces["field_max"] >= traces["field_min"]) and np.all(traces["weight"] > 0)
 
 
 def test_monolayer_hall_scale_uses_von_klitzing_constant():
