@@ -494,14 +494,15 @@ def _neutral_segment(arrays, q, k, samples=None):
     return np.linspace(lo, hi, n)
 
 
-def _ridge_envelope(arrays, q, k, reach=3, smooth=9):
+def _ridge_envelope(arrays, q, k, reach=3, smooth=9, every=1, start=0):
     """Log of the highest measured R near the neutrality line, along the line.
 
     A ridge narrower than the gate step is sampled at a random phase by each
     trace, so single maxima scatter far below the true height; the running
     maximum over ``smooth`` neighbouring traces is an envelope that keeps the
     ridge's true dependence on D.  Traces are rows or columns, whichever the
-    line crosses more squarely.  Returns ``(bottom-gate voltages, envelope)``.
+    line crosses more squarely; ``every`` and ``start`` take every n-th trace.
+    Returns ``(bottom-gate voltages, envelope)``.
     """
     from scipy.ndimage import maximum_filter1d
 
@@ -521,6 +522,7 @@ def _ridge_envelope(arrays, q, k, reach=3, smooth=9):
         warnings.simplefilter("ignore", RuntimeWarning)
         peak = np.nanmax(data[np.flatnonzero(inside)[:, None], idx], axis=1)
     good = np.isfinite(peak) & (peak > 0)
+    good &= (np.arange(good.size) % every) == start
     vb = where[inside][good]
     envelope = maximum_filter1d(np.log(peak[good]), size=smooth, mode="nearest")
     return vb, envelope
@@ -591,8 +593,15 @@ def _neutral_point(maps, q, k):
             3 * np.hypot(stderr, lowest[1]), 0.03 * np.ptp(vb))
         if agree:
             # The two estimates' disagreement is a measure of what the error bar misses.
-            estimates.append((centre, float(np.hypot(stderr, 0.5 * (centre - lowest[0]))),
-                              "symmetry"))
+            stderr = float(np.hypot(stderr, 0.5 * (centre - lowest[0])))
+            if m["mode"] == "neutrality":
+                # So is the spread between the odd and even traces (sampled at other phases).
+                halves = [ridges.symmetry_centre(*_ridge_envelope(m["arrays"], q, k, every=2,
+                                                                  start=j))[0] for j in (0, 1)]
+                if np.all(np.isfinite(halves)):
+                    stderr = max(stderr, 0.5 * abs(halves[0] - halves[1]))
+                m["symmetry"]["halves"] = halves
+            estimates.append((centre, stderr, "symmetry"))
         else:
             estimates.append((lowest[0], lowest[1], "minimum"))
     if not estimates:
