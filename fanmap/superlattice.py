@@ -225,8 +225,12 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
     onsets = [st.field_min for _, st in main_states if np.isfinite(st.field_min)]
     lines = _find_offset_lines(points, free, scale, gate, fields, max_slope,
                                min(onsets) if onsets else 0.0)
+    main_fillings = [_filling_number(st.filling) for _, st in main_states if st.kind == "integer"]
+    main_fillings = [abs(int(round(f))) for f in main_fillings if f and float(f).is_integer()]
     lattice = _fit_lattice(lines, scale, flavours, max_band_filling, notes,
-                           main_origin_hint=_main_origin_hint(main_states, flavours))
+                           main_origin_hint=_main_origin_hint(main_states, flavours),
+                           main_degeneracy=int(np.gcd.reduce(main_fillings))
+                           if len(main_fillings) >= 3 else None)
 
     rng = np.random.default_rng(seed)
     superlattice = None
@@ -555,7 +559,8 @@ def _intercept_tol(line, scale):
     return max(3 * line["intercept_density_stderr"], 1.5 * abs(scale.alpha) * scale.gate_step)
 
 
-def _fit_lattice(lines, scale, flavours, max_band_filling, notes, main_origin_hint=0):
+def _fit_lattice(lines, scale, flavours, max_band_filling, notes, main_origin_hint=0,
+                 main_degeneracy=None):
     """Choose n0 (and s per family) so that every intercept is a multiple s n0.
 
     The real-number GCD is ambiguous by integer factors; the outermost
@@ -609,8 +614,19 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes, main_origin_hi
     best = max(h["explained"] for h in through_origin)
     if best <= 0:
         return None
-    pool = [h for h in through_origin if h["explained"] >= 0.999 * best]
-    shifted = [h for h in evaluated if h["origin"] != 0.0 and h["explained"] >= 0.999 * best]
+    # Landau levels of a graphene moire keep the flavour degeneracy at neutrality and full
+    # filling and are twofold at half filling: readings that contradict the slope steps of
+    # the families (and of the main fan) give way to those that do not.
+    for h in evaluated:
+        h["mismatch"] = _degeneracy_mismatch(h, families, lines, flavours, main_degeneracy)
+    fewest = min(h["mismatch"] for h in evaluated if h["explained"] >= 0.999 * best)
+    pool = [h for h in through_origin if h["explained"] >= 0.999 * best
+            and h["mismatch"] == fewest]
+    shifted = [h for h in evaluated if h["origin"] != 0.0 and h["explained"] >= 0.999 * best
+               and h["mismatch"] == fewest]
+    if not pool and shifted:
+        notes.append("the slope steps of the families place neutrality away from the main "
+                     "fan's origin")
 
     chosen = None
     if main_origin_hint:
@@ -620,18 +636,21 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes, main_origin_hi
             chosen = hinted[0]
     if chosen is None:
         chosen = next((h for h in pool if h["k"] == flavours), None)
-        if chosen is not None and _outer_family_is_half_filling(chosen, families, lines, flavours):
-            half = next((h for h in pool if h["k"] == flavours // 2), None)
-            if half is not None:
-                chosen = half
-                notes.append(f"the outermost satellite family has {flavours // 2}-fold Landau "
-                             f"levels, as at half filling, so it is taken as |s| = "
-                             f"{flavours // 2}; full filling lies outside the gate window")
+        if chosen is None and not pool and shifted:
+            chosen = shifted[0]
+        half = next((h for h in pool if h["k"] == flavours // 2), None) if flavours > 1 else None
+        # the outermost families taken as half filling must show twofold levels themselves
+        if half is not None and (chosen is None or _twofold_at(chosen, flavours, families, lines)) \
+                and _twofold_at(half, flavours // 2, families, lines):
+            chosen = half
+            notes.append(f"the outermost satellite family has twofold Landau levels, as at "
+                         f"half filling, so it is taken as |s| = {flavours // 2}; full filling "
+                         "lies outside the gate window")
     full = [h for h in shifted if h["full_sides"] == 2]
     if chosen is None:
         chosen = full[0] if full else None
     if chosen is None:
-        chosen = pool[0]
+        chosen = pool[0] if pool else max(evaluated, key=lambda h: h["explained"])
         notes.append(f"the outermost satellite family is not at |s| = {flavours} (full "
                      "filling); n0 taken as the largest cell density that makes every "
                      "intercept a multiple of it: check against the zero-field peaks")
@@ -663,23 +682,44 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes, main_origin_hi
             "band_fillings": sorted(fillings, key=float), "families": families}
 
 
-def _outer_family_is_half_filling(hypothesis, families, lines, flavours):
-    """Whether the families put at full filling have half the flavour degeneracy.
+def _degeneracy_mismatch(hypothesis, families, lines, flavours, main_degeneracy):
+    """Families whose slope step contradicts their band filling under this reading."""
+    if flavours % 2:
+        return 0
+
+    def contradicts(s, step):
+        if step is None or s is None or not isinstance(s, int):
+            return False
+        if abs(s) == flavours // 2:
+            return step % flavours == 0          # fourfold steps at half filling
+        if s == 0 or abs(s) == flavours:
+            return step == flavours // 2         # twofold steps at neutrality or full filling
+        return False
+
+    count = 0
+    for fam, s in zip(families, hypothesis["fills"]):
+        slopes = [abs(lines[j]["t"]) for j in fam["lines"]]
+        step = int(np.gcd.reduce(slopes)) if len(slopes) >= 3 else None
+        count += contradicts(s, step)
+    count += contradicts(hypothesis["main_s"], main_degeneracy)
+    return count
+
+
+def _twofold_at(hypothesis, level, families, lines):
+    """Whether every family this reading puts at |s| = level has twofold Landau levels.
 
     Landau levels from full filling (into the remote band) keep the full
     flavour degeneracy, those from half filling in a graphene moire are
     twofold (Cao et al., Nature 556, 80 (2018), from memory); the spacing of
     the slopes t of a family (their greatest common divisor) measures it.
     """
-    if flavours % 2:
+    at_level = [fam for fam, s in zip(families, hypothesis["fills"])
+                if s is not None and abs(s) == level]
+    if not at_level:
         return False
-    outer = [fam for fam, s in zip(families, hypothesis["fills"])
-             if s is not None and abs(s) == flavours]
-    if not outer:
-        return False
-    for fam in outer:
+    for fam in at_level:
         slopes = [abs(lines[j]["t"]) for j in fam["lines"]]
-        if len(slopes) < 3 or np.gcd.reduce(slopes) != flavours // 2:
+        if len(slopes) < 3 or np.gcd.reduce(slopes) != 2:
             return False
     return True
 
@@ -778,11 +818,29 @@ def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
             boot.append(th[2] / th[1])
     result["cell_density_bootstrap_stderr"] = (float(np.std(boot, ddof=1)) if len(boot) >= 20
                                                else float("nan"))
-    result["cell_density_stderr"] = result["cell_density_fit_stderr"]
+    statistical = result["cell_density_fit_stderr"]
     result["stderr_from"] = "covariance"
-    if result["cell_density_bootstrap_stderr"] > result["cell_density_fit_stderr"]:
-        result["cell_density_stderr"] = result["cell_density_bootstrap_stderr"]
+    if result["cell_density_bootstrap_stderr"] > statistical:
+        statistical = result["cell_density_bootstrap_stderr"]
         result["stderr_from"] = "bootstrap over lines"
+    # Lines bend where levels cross and minima are pulled by neighbours; that shifts all lines
+    # alike, which neither the covariance nor a bootstrap sees.  The scatter of the lines'
+    # own slopes about their integers, and of each family's own n0, measures it.
+    slope_dev = [lines[j]["slope_filling"] / lines[j]["t"] - 1 for j in lattice["assigned"]]
+    per_family = {}
+    for j, s in lattice["assigned"].items():
+        per_family.setdefault(float(s), []).append(
+            (lines[j]["intercept"] - v0) / (beta * float(s)))
+    family_n0 = [np.median(v) for v in per_family.values()]
+    systematic_rel = (np.std(slope_dev, ddof=1) / np.sqrt(len(slope_dev))
+                      if len(slope_dev) >= 3 else 0.0)
+    family_spread = (np.std(family_n0, ddof=1) / np.sqrt(len(family_n0))
+                     if len(family_n0) >= 2 else 0.0)
+    result["cell_density_systematic_stderr"] = float(np.hypot(
+        systematic_rel * result["cell_density"], family_spread))
+    result["cell_density_stderr"] = float(np.hypot(statistical,
+                                                   result["cell_density_systematic_stderr"]))
+    result["stderr_from"] += " and line scatter"
     return result
 
 
@@ -834,6 +892,7 @@ def _superlattice_dict(joint, flavours, lattice_constant, lattice, fan_result, n
         "satellite_count": len(lattice["assigned"]),
         "cell_density_fit_stderr": joint["cell_density_fit_stderr"],
         "cell_density_bootstrap_stderr": joint["cell_density_bootstrap_stderr"],
+        "cell_density_systematic_stderr": joint["cell_density_systematic_stderr"],
         "stderr_from": joint["stderr_from"],
         "joint_fit": joint["joint"],
         "density_per_volt": joint["density_per_volt"],
