@@ -34,7 +34,7 @@ or valley split states) are left out and listed.
 import math
 
 import numpy as np
-from scipy import optimize
+from scipy import ndimage, optimize
 
 from . import _oscillations as osc
 from . import physics as ph
@@ -221,7 +221,13 @@ def _hall_windows(fields, rxy, tolerance, min_points):
         last[j] = max(k, first_judged[0])
     idx = np.clip(last, 0, n_f - 1)
     cols = np.arange(n_g)
+    # The window of half the field (at least min_points values) for the window dependence.
+    half = np.searchsorted(fields, 0.5 * fields[idx], side="right") - 1
+    half = np.maximum(half, np.argmax(s0 >= min_points, axis=0))
+    half_slope = np.where((last >= 0) & (half < idx), slope[np.clip(half, 0, n_f - 1), cols],
+                          np.nan)
     result = {
+        "half_slope": half_slope,
         "slope": np.where(last >= 0, slope[idx, cols], np.nan),
         "slope_stderr": np.where(last >= 0, np.sqrt(slope_var[idx, cols]), np.nan),
         "window_max": np.where(last >= 0, fields[idx], np.nan),
@@ -278,9 +284,13 @@ def hall_density(fan_map, *, field_window=None, linearity_tolerance=0.01, min_po
                              "values; give a window with at least three")
         fields, rxy = fields[keep], rxy[keep]
         fits = [fit_line(fields, rxy[:, j]) for j in range(gates.size)]
+        lower = fields <= lo + 0.5 * (hi - lo)
+        halves = [fit_line(fields[lower], rxy[lower, j]) if lower.sum() >= 3 else None
+                  for j in range(gates.size)]
         windows = {
             "slope": np.array([f.slope for f in fits]),
             "slope_stderr": np.array([f.slope_stderr for f in fits]),
+            "half_slope": np.array([h.slope if h else np.nan for h in halves]),
             "window_max": np.full(gates.size, hi),
             "linear": np.ones(gates.size, dtype=bool),
         }
@@ -290,10 +300,12 @@ def hall_density(fan_map, *, field_window=None, linearity_tolerance=0.01, min_po
     with np.errstate(divide="ignore", invalid="ignore"):
         density = 1.0 / (ph.ELEMENTARY_CHARGE * slope)
         stderr = np.abs(density) * windows["slope_stderr"] / np.abs(slope)
+        half = 1.0 / (ph.ELEMENTARY_CHARGE * windows["half_slope"])
+        shift = np.where(np.isfinite(half), np.abs(density - half), 0.0)
     return {
         "gate": gates, "density": density, "density_stderr": stderr,
         "hall_coefficient": slope, "window_max": windows["window_max"],
-        "linear": windows["linear"],
+        "linear": windows["linear"], "window_shift": shift,
     }
 
 
@@ -304,7 +316,8 @@ def _two_carrier_mask(gates, density, exclusion_factor):
     1/(n e) turns over and changes sign instead of diverging.  The turning
     points of |R_H| on either side of the sign change mark the two-carrier
     region; points with |n_H| below ``exclusion_factor`` times the larger
-    turning-point density are excluded.  Returns ``(keep, floor, note)``.
+    turning-point density are excluded.  Returns ``(keep, floor, note, segment)``,
+    ``segment`` marking the single-band stretch around neutrality before the exclusion.
     """
     ok = np.isfinite(density)
     coeff = np.where(ok, 1.0 / density, np.nan)
@@ -312,17 +325,25 @@ def _two_carrier_mask(gates, density, exclusion_factor):
     keep = ok.copy()
     note = None
     if idx.size < 3:
-        return keep, None, note
-    signs = np.sign(coeff[idx])
-    # Neutrality: a change from holes to electrons with rising gate voltage (a band edge
-    # of a superlattice flips the other way first); of several, the one with the longest
-    # single-band flanks, where |n_H| keeps growing away from it.
-    flips = np.flatnonzero((signs[:-1] < 0) & (signs[1:] > 0))
-    if flips.size == 0:
-        flips = np.flatnonzero(signs[1:] != signs[:-1])
+        return keep, None, note, ok.copy()
+    # Signs of the Hall coefficient after a running median, so that noise near neutrality
+    # does not count as sign changes; real ones (neutrality, superlattice band edges) span
+    # many gate voltages.
+    width = max(5, idx.size // 40) | 1
+    signs = np.sign(ndimage.median_filter(coeff[idx], size=width, mode="nearest"))
+    # Neutrality is a change from holes to electrons with rising gate voltage; a band edge
+    # of a superlattice first flips the other way.  Of several, the one with the longest
+    # single-band stretch (up to the nearest opposite flips) wins.
+    rising = np.flatnonzero((signs[:-1] < 0) & (signs[1:] > 0))
+    falling = np.flatnonzero((signs[:-1] > 0) & (signs[1:] < 0))
+    flips = rising if rising.size else np.flatnonzero(signs[1:] != signs[:-1])
     magnitude = np.abs(coeff[idx])
     if flips.size:
-        spans = [_single_band_span(np.abs(density[idx]), f) for f in flips]
+        spans = []
+        for f in flips:
+            below, above = falling[falling < f], falling[falling > f]
+            spans.append((below[-1] + 1 if below.size else 0,
+                          above[0] if above.size else idx.size - 1))
         best = int(np.argmax([hi - lo for lo, hi in spans]))
         flip, (first, last) = flips[best], spans[best]
         keep[idx[:first]] = False
@@ -337,12 +358,13 @@ def _two_carrier_mask(gates, density, exclusion_factor):
     else:
         peak = int(np.argmax(magnitude))
         if peak in (0, idx.size - 1):
-            return keep, None, note     # monotonic: neutrality outside the gate range
+            return keep, None, note, ok.copy()   # monotonic: neutrality outside the gate range
         turning = [idx[peak]]
+    segment = keep.copy()
     floor = max(abs(density[t]) for t in turning)
     lo, hi = min(gates[t] for t in turning), max(gates[t] for t in turning)
     keep &= (np.abs(density) >= exclusion_factor * floor) & ~((gates >= lo) & (gates <= hi))
-    return keep, floor, note
+    return keep, floor, note, segment
 
 
 def _fit_single_carrier(gates, density, sigma, keep, rounds=4):
@@ -378,39 +400,14 @@ def _fit_single_carrier(gates, density, sigma, keep, rounds=4):
     return fit, used
 
 
-def _single_band_span(magnitude, flip, drop=0.8):
-    """Index range around a sign change over which |n_H| keeps growing away from it.
-
-    Walking outwards from the sign change between ``flip`` and ``flip + 1``,
-    each side first passes the two-carrier dip (|n_H| falls from its divergence
-    at the sign change to the turning point), then ends where |n_H| falls below
-    ``drop`` times its largest value so far (a van Hove singularity or band
-    edge: the Hall density turns over and changes sign again).  Returns
-    ``(first, last)`` inclusive.
-    """
-    def walk(steps):
-        steps = list(steps)
-        k = 0
-        while k + 1 < len(steps) and magnitude[steps[k + 1]] <= magnitude[steps[k]]:
-            k += 1                                  # the two-carrier dip
-        end, top = steps[k], magnitude[steps[k]]
-        for i in steps[k:]:
-            if magnitude[i] < drop * top:
-                break
-            top = max(top, magnitude[i])
-            end = i
-        return end
-
-    return walk(range(flip, -1, -1)), walk(range(flip + 1, magnitude.size))
-
-
 def hall_calibration(fan_map, *, field_window=None, geometry_factor=None,
                      exclusion_factor=4.0, linearity_tolerance=0.01):
     """Lever arm and zero-density voltage from the Hall density, and the mobility.
 
     n_H(V_g) from :func:`hall_density` is fitted with n = alpha (V_g - V0),
     leaving out the two-carrier region near neutrality (see
-    :func:`_two_carrier_mask`) and outliers beyond four robust sigmas.  The
+    :func:`_two_carrier_mask`) and outliers beyond four robust sigmas.  Each
+    gate's error includes the change of its slope when the window is halved.  The
     mobility mu = 1 / (e |n_H| rho_xx) uses R_xx at the lowest field, with
     rho_xx = R_xx * ``geometry_factor`` (width / length of the Hall bar
     between the voltage probes).
@@ -428,15 +425,9 @@ def hall_calibration(fan_map, *, field_window=None, geometry_factor=None,
     hall = hall_density(fan_map, field_window=field_window,
                         linearity_tolerance=linearity_tolerance)
     gates, density = hall["gate"], hall["density"]
-    keep, floor, note = _two_carrier_mask(gates, density, exclusion_factor)
+    keep, floor, note, segment = _two_carrier_mask(gates, density, exclusion_factor)
     if note:
         warnings.append(note)
-    if floor is not None:
-        dropped = int(np.sum(np.isfinite(density) & ~keep))
-        warnings.append(
-            f"Hall: {dropped} gate voltages near neutrality left out (two carriers: the Hall "
-            f"coefficient turns over at |n| = {floor * 1e-4:.3g} cm^-2, points below "
-            f"{exclusion_factor:g} times that are not single-carrier)")
     if not np.all(hall["linear"][np.isfinite(density)]):
         bad = int(np.sum(~hall["linear"] & np.isfinite(density)))
         warnings.append(f"Hall: R_xy is not linear even over the lowest fields at {bad} gate "
@@ -444,12 +435,26 @@ def hall_calibration(fan_map, *, field_window=None, geometry_factor=None,
     # Per-gate error: the slope's statistical error and, in quadrature, the linearity allowed
     # at the edge of the neutrality gap (HALL_LINEARITY of n), which a smooth two-carrier
     # tail can leave in every point; errors are absolute (the scatter only scales them up).
-    sigma = np.hypot(np.nan_to_num(hall["density_stderr"], nan=np.inf),
-                     HALL_LINEARITY * np.abs(density))
+    sigma = np.sqrt(np.nan_to_num(hall["density_stderr"], nan=np.inf) ** 2
+                    + (HALL_LINEARITY * density) ** 2 + hall["window_shift"] ** 2)
     fit, used = _fit_single_carrier(gates, density, sigma, keep)
     if fit.points < 3 or not np.isfinite(fit.slope):
         raise InputError("Hall: fewer than three single-carrier gate voltages; the Hall density "
                          "cannot be fitted (give --hall-window or check the Hall channel)")
+    if floor is not None:
+        dropped = int(np.sum(np.isfinite(density) & ~keep))
+        warnings.append(
+            f"Hall: {dropped} gate voltages near neutrality left out (two carriers: the Hall "
+            f"coefficient turns over at |n| = {floor * 1e-4:.3g} cm^-2, points below "
+            f"{exclusion_factor:g} times that are not single-carrier)")
+    # The slope's dependence on the window (two carriers with mu B no longer small, the
+    # onset of plateaus) tends to have one sign at every gate voltage, so its median is
+    # also added as a common error of alpha.
+    common = float(np.nanmedian((hall["window_shift"] / np.abs(density))[used]))
+    alpha, alpha_err = fit.slope, math.hypot(fit.slope_stderr, common * abs(fit.slope))
+    # A common relative error of |n| moves V0 unless both branches balance about it.
+    v0, v0_err = fit.root, math.hypot(fit.root_stderr,
+                                      common * abs(np.mean(gates[used] - fit.root)))
     fields, _, rxx = _traces(fan_map, RXX)
     low = int(np.argmin(fields))
     if geometry_factor is None:
@@ -464,10 +469,10 @@ def hall_calibration(fan_map, *, field_window=None, geometry_factor=None,
                         "magnetoresistance may bias it")
     window = float(np.nanmedian(hall["window_max"][used]))
     return {
-        "density_per_volt": fit.slope,
-        "density_per_volt_stderr": fit.slope_stderr,
-        "zero_density_voltage": fit.root,
-        "zero_density_voltage_stderr": fit.root_stderr,
+        "density_per_volt": alpha,
+        "density_per_volt_stderr": alpha_err,
+        "zero_density_voltage": v0,
+        "zero_density_voltage_stderr": v0_err,
         "field_window": [float(fields.min()), window],
         "gate": gates, "density": density, "density_stderr": hall["density_stderr"],
         "used": used,
