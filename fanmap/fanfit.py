@@ -21,7 +21,7 @@ from scipy.signal import find_peaks as _find_peaks
 
 from . import __version__
 from . import _schema as S
-from .errors import InputError, NoFanError
+from .errors import FanmapError, InputError, NoFanError
 from .materials import get_material
 from .naming import name_lines
 from .physics import (ELEMENTARY_CHARGE, FLUX_QUANTUM_SINGLE_ELECTRON, HBAR, VON_KLITZING,
@@ -818,8 +818,15 @@ def _add_superlattice(fan_map, result, preset):
         if result.material == "moire-graphene":
             result.warnings.append("superlattice analysis skipped: it needs the absolute scale")
         return
-    finding = analyse_superlattice(fan_map, result, flavours=preset.flavours or 4,
-                                   material=result.material)
+    try:
+        finding = analyse_superlattice(fan_map, result, flavours=preset.flavours or 4,
+                                       material=result.material)
+    except FanmapError as exc:
+        if result.material == "moire-graphene":
+            raise
+        # "auto" only looks for a superlattice; its absence must not sink the main fit.
+        result.warnings.append(f"superlattice search skipped: {exc}")
+        return
     result.superlattice = finding.superlattice
     result.states.extend(finding.satellites)
     summary = finding.superlattice or {}
