@@ -40,10 +40,12 @@ from matplotlib.transforms import blended_transform_factory
 from . import _schema as S
 from . import _style
 from .errors import InputError
-from .physics import FLUX_QUANTUM_SINGLE_ELECTRON, VACUUM_PERMITTIVITY, filling_from_density
+from .physics import (FLUX_QUANTUM_SINGLE_ELECTRON, VACUUM_PERMITTIVITY, filling_from_density,
+                      hall_filling)
 
 __all__ = [
     "state_label", "colour_scale", "plot_fan", "plot_filling_map", "plot_density_map",
+    "plot_hall_fillings",
     "plot_residuals", "plot_index_plot", "index_plot_data", "plot_gate_maps", "plot_nd_map",
     "plot_batch_summary", "state_residuals", "value_with_error", "DENSITY_UNIT",
 ]
@@ -679,6 +681,60 @@ def plot_density_map(fan_map, result, *, signal=None, scale="auto"):
         _label_lines(fig, ax, curves, texts, kinds)
         _kind_legend(ax, kinds)
         fig.suptitle("map against density n = α (Vg − V₀)",
+                     fontsize=_style.FONT_SIZE + 1)
+    return fig
+
+
+def plot_hall_fillings(fan_map, result, *, fields=None, max_filling=None):
+    """Hall filling ν_H = R_K / R_xy against the fitted filling factor, at a few fields.
+
+    On a plateau R_xy = h/(ν e²) (von Klitzing et al., PRL 45, 494 (1980)), so with a
+    correct calibration the curves step across the diagonal ν_H = ν at the fitted
+    fillings: an independent look at the absolute scale.  ``fields`` (T) default
+    to four rows between a third of the top field and the top field.
+    """
+    _require_calibration(result, "Hall figure")
+    if S.RXY not in fan_map.data_vars:
+        raise InputError("the map has no R_xy ('rxy') variable; the Hall figure needs it")
+    da = _signal(fan_map, S.RXY)
+    gate, field = da[S.GATE].values, da[S.FIELD].values
+    positive = np.flatnonzero(field > 0) if np.any(field > 0) else np.flatnonzero(field < 0)
+    if positive.size == 0:
+        raise InputError("the Hall figure needs rows at non-zero field")
+    top = np.abs(field[positive]).max()
+    wanted = np.asarray(fields if fields is not None else top * np.array([1.0, 0.75, 0.5, 0.33]))
+    rows = list(dict.fromkeys(int(positive[np.argmin(np.abs(np.abs(field[positive]) - abs(b)))])
+                              for b in wanted))
+    fillings = np.array([_state_nominal_filling(st) for st in result.states
+                         if st.kind in ("integer", "broken-symmetry")])
+    fillings = fillings[np.isfinite(fillings)]
+    if max_filling is None:
+        # The low fillings, where plateaus are wide enough to see as steps.
+        max_filling = min(np.abs(fillings).max() if fillings.size else 12.0, 14.0) + 2.0
+    with rc_context(_style.rc_params()):
+        fig = _new_figure(6.4, 4.6)
+        ax = fig.add_subplot()
+        for value in fillings:
+            ax.axhline(value, color="#dddddd", linewidth=0.6, zorder=0)
+        ax.plot([-max_filling, max_filling], [-max_filling, max_filling], color="#999999",
+                linestyle="--", linewidth=0.8, label="ν_H = ν")
+        for k, row in enumerate(rows):
+            b = float(field[row])
+            nu = filling_from_density(_density(gate, result), b)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                nu_hall = np.sign(b) * hall_filling(da.values[row])
+            # Near neutrality R_xy crosses zero and R_K/R_xy means nothing: leave it out.
+            nu_hall = np.where((np.abs(nu_hall) <= 1.5 * max_filling) & (np.abs(nu) >= 1.0),
+                               nu_hall, np.nan)
+            style = _style.SERIES_STYLES[k % len(_style.SERIES_STYLES)]
+            ax.plot(nu, nu_hall, color=style["color"], marker=style["marker"], markersize=3.5,
+                    markevery=max(1, gate.size // 25), linewidth=1.0, label=f"B = {b:.3g} T")
+        ax.set_xlim(-max_filling, max_filling)
+        ax.set_ylim(-max_filling, max_filling)
+        ax.set_xlabel("filling factor ν from the fit")
+        ax.set_ylabel("Hall filling ν_H = R_K / R_xy")
+        ax.legend(loc="upper left")
+        fig.suptitle("Hall plateaus against the fitted filling factor (grey: fitted states)",
                      fontsize=_style.FONT_SIZE + 1)
     return fig
 

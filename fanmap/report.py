@@ -86,6 +86,12 @@ def _fan_figures(fan_map, result, notes):
             "density", "Map against density",
             "The map redrawn against the carrier density n = α (V_g − V0).",
             F.plot_density_map(fan_map, result)))
+        if S.RXY in fan_map.data_vars:
+            figures.append(_Figure(
+                "hall", "Hall plateaus against the fitted filling factor",
+                "Hall filling R_K/R_xy at a few fields against ν from the fit: with the right "
+                "scale the plateaus cross the diagonal at the fitted fillings.",
+                F.plot_hall_fillings(fan_map, result)))
     else:
         notes.append("no calibration: the filling-factor and density maps are not drawn")
     if result.ridge_points is not None and result.states:

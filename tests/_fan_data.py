@@ -4,7 +4,7 @@ import numpy as np
 import xarray as xr
 
 from fanmap import _schema as S
-from fanmap.physics import FLUX_QUANTUM_SINGLE_ELECTRON, filling_from_density
+from fanmap.physics import FLUX_QUANTUM_SINGLE_ELECTRON, VON_KLITZING, filling_from_density
 from fanmap.results import FanResult, State
 
 ALPHA = 7.2e14      # m^-2 V^-1
@@ -12,8 +12,12 @@ V0 = 1.5            # V
 FILLINGS = (-14, -10, -6, -2, 2, 6, 10, 14)
 
 
-def synthetic_fan(n_field=40, n_gate=161, alpha=ALPHA, v0=V0, nan_fraction=0.0, seed=0):
-    """A monolayer-like R_xx fan: dips at nu = +-2, 6, 10, ... on a smooth background."""
+def synthetic_fan(n_field=40, n_gate=161, alpha=ALPHA, v0=V0, nan_fraction=0.0, seed=0,
+                  hall=False):
+    """A monolayer-like R_xx fan: dips at nu = +-2, 6, 10, ... on a smooth background.
+
+    ``hall=True`` adds R_xy on ideal plateaus h/(nu e^2) at the nearest of those fillings.
+    """
     gate = np.linspace(-30.0, 30.0, n_gate)
     field = np.linspace(0.5, 9.0, n_field)
     nu = filling_from_density(alpha * (gate[None, :] - v0), field[:, None])
@@ -24,8 +28,14 @@ def synthetic_fan(n_field=40, n_gate=161, alpha=ALPHA, v0=V0, nan_fraction=0.0, 
     if nan_fraction:
         mask = np.random.default_rng(seed + 1).random(rxx.shape) < nan_fraction
         rxx[mask] = np.nan
+    data = {S.RXX: ((S.FIELD, S.GATE), rxx, {"units": "ohm", "long_name": S.LONG_NAMES[S.RXX]})}
+    if hall:
+        levels = np.asarray(FILLINGS, dtype=float)
+        plateau = levels[np.argmin(np.abs(nu[..., None] - levels), axis=-1)]
+        data[S.RXY] = ((S.FIELD, S.GATE), VON_KLITZING / plateau,
+                       {"units": "ohm", "long_name": S.LONG_NAMES[S.RXY]})
     return xr.Dataset(
-        {S.RXX: ((S.FIELD, S.GATE), rxx, {"units": "ohm", "long_name": S.LONG_NAMES[S.RXX]})},
+        data,
         coords={S.FIELD: (S.FIELD, field, {"units": "T", "long_name": S.LONG_NAMES[S.FIELD]}),
                 S.GATE: (S.GATE, gate, {"units": "V", "long_name": S.LONG_NAMES[S.GATE]})},
         attrs={S.MAP_KIND: S.FAN, "source": "demo-device-A.nc"},

@@ -138,6 +138,21 @@ def test_density_map_puts_a_state_at_nu_e_b_over_h():
     assert np.allclose(line.get_xdata(), 2 * field / H_OVER_E / 1e16)
 
 
+def test_hall_fillings_step_at_the_fitted_fillings():
+    # R_xy = h/(nu e^2) on a plateau (von Klitzing et al., PRL 45, 494 (1980); R_K from
+    # scipy.constants): the Hall filling must read 6 where the fitted filling is near 6.
+    ds, result = synthetic_fan(hall=True), synthetic_result(extra_states=False)
+    fig = F.plot_hall_fillings(ds, result)
+    curves = [l for l in fig.axes[0].get_lines() if l.get_label().startswith("B = ")]
+    assert len(curves) == 4
+    for line in curves:
+        nu, nu_hall = np.asarray(line.get_xdata()), np.asarray(line.get_ydata())
+        near_six = np.abs(nu - 6) < 0.5
+        assert near_six.any() and np.allclose(nu_hall[near_six], 6.0)
+    with pytest.raises(InputError, match="no R_xy"):
+        F.plot_hall_fillings(synthetic_fan(n_field=5, n_gate=11), result)
+
+
 def test_redrawn_maps_need_a_calibration():
     ds, result = synthetic_fan(), synthetic_result()
     result.density_per_volt = float("nan")
