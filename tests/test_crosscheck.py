@@ -365,3 +365,23 @@ def test_check_command_bad_input_exits_nonzero(tmp_path, capsys):
         main(["check", str(tmp_path / "missing.nc"), "--hall-window", "2:1"])
     assert exc.value.code == 2
     assert "LOW < HIGH" in capsys.readouterr().err
+
+
+def test_check_command_temperature_series(tmp_path, capsys):
+    # Three or more maps at different temperatures: the effective mass (GaAs 0.067 m_e,
+    # handbook) from exact LK maps written to netCDF and read back by the command.
+    from fanmap.cli import main
+
+    fields = np.linspace(0.05, 1.5, 600)
+    paths = []
+    for t in (0.4, 1.0, 2.0, 3.0, 4.5):
+        path = tmp_path / f"fan_{t}K.nc"
+        lk_fan_map(temperature=t, fields=fields, dingle=3.0, saturate=False,
+                   gates=np.linspace(1, 3, 4)).to_netcdf(path)
+        paths.append(str(path))
+    out = tmp_path / "checks.json"
+    assert main(["check", *paths, "--material", "2deg", "--no-fit", "--json", str(out),
+                 "--temperatures", "0.4,1,2,3,4.5"]) == 0
+    assert "effective mass" in capsys.readouterr().out
+    mass = json.loads(out.read_text())["effective_mass"]
+    assert mass["effective_mass"] == pytest.approx(0.067, rel=0.03)
