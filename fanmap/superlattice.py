@@ -251,6 +251,11 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
     elif lines:
         notes.append(f"{len(lines)} line(s) off the main fan origin, but no consistent set of "
                      "band fillings: not reported as satellites")
+    all_slopes = [abs(line["t"]) for line in lines] + main_fillings
+    if len(all_slopes) >= 6 and flavours > 1 and np.gcd.reduce(all_slopes) >= 2 * flavours:
+        notes.append(f"every line's slope t is a multiple of {int(np.gcd.reduce(all_slopes))}: "
+                     "the main fan's lever arm is probably too large by a whole factor (a "
+                     "Hall channel or a dielectric prior fixes the scale)")
 
     cell_density = superlattice["cell_density"] if superlattice else None
     cell_sigma = superlattice["cell_density_stderr"] if superlattice else None
