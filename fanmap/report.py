@@ -531,8 +531,9 @@ def write_fan_outputs(out_dir, fan_map, result):
     -------
     dict
         File name -> path of every file written: ``fan.png``/``fan.pdf`` (fitted fan),
-        ``filling.*`` and ``density.*`` (redrawn maps), ``residuals.*``,
-        ``index_plot.*`` (when cross-checks ran), ``result.json``, ``report.html``.
+        ``filling.*`` and ``density.*`` (redrawn maps), ``hall.*`` (when the map has
+        R_xy), ``residuals.*`` (when the result has ridge points), ``index_plot.*``
+        (when cross-checks ran), ``result.json``, ``report.html``.
     """
     _check_fan_map(fan_map)
     notes = []
