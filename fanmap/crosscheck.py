@@ -610,7 +610,8 @@ def _gate_frequency(fields, trace, field_step, *, field_range=None, points_per_p
 
 
 def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
-                            points_per_period=6.0, min_cycles=3.0, geometry_factor=None):
+                            points_per_period=6.0, min_cycles=3.0, geometry_factor=None,
+                            max_gates=160):
     """Lever arm from the Shubnikov-de Haas frequency at every gate voltage.
 
     At each gate voltage the conductivity-like trace (sigma_xx from R_xx and
@@ -629,6 +630,9 @@ def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
         oscillations are sampled ``points_per_period`` times to the highest.
     geometry_factor : float, optional
         Width / length of the Hall bar (rho_xx = R_xx W/L) for sigma_xx; 1 by default.
+    max_gates : int
+        At most this many gate voltages, evenly spread, are analysed (the others
+        are NaN); more add little to the straight-line fit and cost time.
 
     Returns
     -------
@@ -645,7 +649,10 @@ def oscillation_calibration(fan_map, *, degeneracy=None, field_range=None,
     freq_err = np.full(gates.size, np.nan)
     window = np.full((gates.size, 2), np.nan)
     reasons = {}
-    for j in range(gates.size):
+    # Evenly spread gate voltages beyond max_gates add little to a straight-line fit.
+    analysed = np.unique(np.round(np.linspace(0, gates.size - 1,
+                                              min(gates.size, max_gates))).astype(int))
+    for j in analysed:
         found, why = _gate_frequency(fields, sigma[:, j], step, field_range=field_range,
                                      points_per_period=points_per_period, min_cycles=min_cycles)
         if found is None:
