@@ -1275,11 +1275,32 @@ def run_crosschecks(fan_map, fan_result=None, *, degeneracy=None, material="auto
     Returns
     -------
     dict
-        JSON-ready; see the README for every key.  Main keys:
-        ``hall_density_per_volt``, ``oscillation_density_per_volt``,
-        ``index_plot_intercept`` (each with ``_stderr``), the matching
-        ``*_zero_density_voltage``, ``mobility``, ``comparison``,
-        ``comparison_pairs``, ``disagreements``, ``index_plot``, ``warnings``.
+        JSON-ready (through :func:`fanmap.results.to_jsonable`), SI units; NaN where a
+        method could not run:
+
+        - ``hall_density_per_volt``, ``hall_zero_density_voltage`` (each with
+          ``_stderr``; V0 referred to the fan fit's first row when it found a drift,
+          as measured in ``hall_zero_density_voltage_at_rows``), ``hall_field_window``
+          (T), ``mobility`` (median, m^2 V^-1 s^-1), ``mobility_field``,
+          ``geometry_factor``, ``hall`` (per gate: ``gate``, ``density``,
+          ``density_stderr``, ``used``, ``mobility``);
+        - ``oscillation_density_per_volt``, ``oscillation_zero_density_voltage``
+          (each with ``_stderr`` and ``_at_rows`` as above),
+          ``oscillation_frequency_per_volt`` (T/V, with ``_stderr``),
+          ``oscillation_degeneracy`` and ``oscillation_degeneracy_from``,
+          ``degeneracy_from_hall_ratio`` (n_H / (e B_F/h)), ``oscillation`` (per
+          gate: ``gate``, ``frequency``, ``density``, ``used``);
+        - ``index_plot_intercept`` (gamma, with ``_stderr``; combined over the
+          plots), ``index_plot_expected_intercept``, ``index_plots`` (one dict of
+          :func:`landau_index_plot` per gate voltage) and ``index_plot`` (the one
+          with most minima, for a figure: ``index`` N and ``inverse_field`` 1/B_N);
+        - ``effective_mass`` (dict of :func:`effective_mass_from_series`, with a
+          temperature series) or ``quantum_lifetime`` (dict of
+          :func:`quantum_lifetime`, with ``effective_mass``);
+        - ``comparison`` (rows: ``method``, ``density_per_volt``,
+          ``zero_density_voltage`` and their ``_stderr``), ``comparison_pairs``,
+          ``disagreements`` (text), ``agree``, ``threshold_sigma``;
+        - ``material``, ``warnings``.
     """
     if fan_result is not None and material == "auto" and fan_result.material:
         material = fan_result.material
