@@ -293,6 +293,7 @@ def _fit_lines(minima, origin_rows, votes, bin_width, field, gate, dir_rows, use
         line = _assign(minima, origin_rows, slopes, tolerance, resolved)
         keep = _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance,
                                   resolved, band=max(1.5 * step, 3 * residual_scale))
+        keep &= np.abs(slopes) * b_max > 3 * step
         if keep.sum() < 2:
             raise NoFanError("fewer than two fan lines have enough resolved minima to fit; "
                              "the map shows no usable Landau fan")
@@ -716,6 +717,10 @@ def _line_weights(line, field, nu, resid, weights, c, n_lines):
 def _fixed_fit(minima, line, fillings, n_rows, dir_rows, use_hysteresis, bootstrap, seed):
     """Joint fit V = V0 + nuisance + c nu_j |B| with every filling fixed; c = (h/e) / alpha."""
     named = np.isfinite(fillings)
+    if named.sum() < 2:
+        raise NoFanError("fewer than two fan lines could be named as integer or fractional "
+                         "states, so no lever arm follows; check the map, or fix the "
+                         "degeneracy with --material")
     sel = (line >= 0) & named[np.maximum(line, 0)]
     nu = fillings[np.maximum(line, 0)]
     rows = minima.row

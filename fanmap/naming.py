@@ -372,6 +372,8 @@ def name_lines(slopes, slope_stderr, onsets, *, weights=None, hall_fillings=None
     (4, 1, 'broken-symmetry', ['2', '6', '10', '-2', '-6', '1', '3'])
     """
     err = np.asarray(slope_stderr, float)
+    # A line whose error the fit could not give (singular covariance) counts as 2 % uncertain.
+    err = np.where(np.isfinite(err), err, 0.02 * np.abs(np.asarray(slopes, float)))
     unit, gamma, shift, main = main_sequence_unit(slopes, err, onsets, weights)
     s = np.asarray(slopes, float) - shift
     relative = s / unit
