@@ -217,6 +217,19 @@ def test_effective_mass_and_dingle_from_temperature_series():
     assert e["dingle_prefactor"] == pytest.approx(4.0, rel=0.1)
 
 
+def test_quantum_lifetime_from_one_map():
+    # Dingle factor exp(-2 pi^2 k_B T_D m*/(hbar e B)) (Shoenberg 1984) with the LK thermal
+    # factor at the map's temperature divided out; tau_q = hbar / (2 pi k_B T_D).
+    m = lk_fan_map(temperature=1.0, fields=np.linspace(0.05, 1.5, 600), dingle=3.0,
+                   saturate=False, hall=False, gates=np.linspace(1, 3, 4))
+    q = cc.quantum_lifetime(m, gate=3.0, effective_mass=0.067)
+    assert abs(q["dingle_temperature"] - 3.0) < 3 * q["dingle_temperature_stderr"]
+    assert q["dingle_temperature"] == pytest.approx(3.0, rel=0.05)
+    assert q["quantum_lifetime"] == pytest.approx(C.hbar / (2 * np.pi * C.k * 3.0), rel=0.05)
+    r = cc.run_crosschecks(m, material="2deg", effective_mass=0.067)
+    assert r["quantum_lifetime"]["dingle_temperature"] == pytest.approx(3.0, rel=0.05)
+
+
 def test_temperature_series_needs_temperatures():
     maps = [lk_fan_map(temperature=t) for t in (0.5, 1.0)]
     with pytest.raises(InputError, match="three or more"):
