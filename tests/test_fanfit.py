@@ -193,6 +193,15 @@ def test_bad_input_raises_clear_errors(case):
         fit_fan(ds)
 
 
+def test_command_out_folder_holds_report_and_result(tmp_path):
+    path = tmp_path / "fan.nc"
+    handbuilt_fan(MONOLAYER, hall=True, field=(1.0, 12.0, 60)).to_netcdf(path)
+    out = tmp_path / "out"
+    assert main(["fit", str(path), "--out", str(out), "--bootstrap", "0"]) == 0
+    assert (out / "result.json").exists() and (out / "report.html").exists()
+    assert json.loads((out / "result.json").read_text())["scale_from"] == "hall"
+
+
 def test_command_writes_json_and_fails_cleanly(tmp_path, capsys):
     path = tmp_path / "fan.nc"
     handbuilt_fan(MONOLAYER, hall=True).to_netcdf(path)
