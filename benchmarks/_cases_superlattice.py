@@ -35,6 +35,11 @@ CASES = [
     for hall in (True, False)
     for seed in (3,)
 ] + [
+    # the shipped sample map's settings (coarser gate, B = 0 row)
+    ("moire 1.1 deg sample-like 400 x 160, B = 0 row",
+     dict(material="moire-graphene", gate=np.linspace(-6, 6, 400),
+          field=np.linspace(8 / 160, 8, 160), zero_field_row=True, seed=1)),
+] + [
     (f"{material} (no superlattice) seed {seed}", dict(material=material, seed=seed))
     for material in ("graphene-monolayer", "graphene-bilayer", "2deg")
     for seed in (3, 4)
