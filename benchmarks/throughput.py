@@ -12,7 +12,11 @@ V0), then analyses it
 
 Each run is a separate process; its peak memory is the largest summed resident
 set of its whole process tree (the batch, the dask scheduler's process and every
-worker), sampled with psutil every 0.1 s.  The per-map analysis is the fan fit
+worker), sampled with psutil every 0.1 s, and its CPU time is the user + system
+time of every process of the tree.  Wall-clock rates depend on what else the
+machine runs; CPU time per map does not, so the overhead is given both ways, and
+the median analysis time of one map inside the workers (the table's ``elapsed``
+column) shows whether the analysis itself ran slower there.  The per-map analysis is the fan fit
 (cross-checks and per-map figures off, so that the machinery and not the figure
 writer is measured); the same settings go to every run.
 
@@ -80,19 +84,24 @@ def _phase(kind, archive, out, count):
     maps = maps[:count]
     start = time.perf_counter()
     if kind == "serial":
-        failed = sum(batch.analyse_one(path, _settings())["status"] != "ok" for path in maps)
+        rows = [batch.analyse_one(path, _settings()) for path in maps]
     else:
-        outcome = batch.run_batch(batch.jobs_for_paths(maps, root, _settings()), out,
-                                  workers=int(kind), stream=None)
-        failed = outcome.failed
-    print(json.dumps({"seconds": time.perf_counter() - start, "maps": len(maps), "failed": failed}))
+        batch.run_batch(batch.jobs_for_paths(maps, root, _settings()), out, workers=int(kind), stream=None)
+        rows = batch.read_results_table(Path(out) / "results.csv")
+    print(json.dumps({"seconds": time.perf_counter() - start, "maps": len(maps),
+                      "failed": sum(row["status"] != "ok" for row in rows),
+                      "median_map_s": float(np.median([row["elapsed"] for row in rows]))}))
 
 
-def _tree_rss(process):
+def _sample(process, cpu):
+    """Summed RSS of the tree now; updates ``cpu`` (pid -> user + system seconds so far)."""
     total = 0
     for proc in [process] + process.children(recursive=True):
         try:
-            total += proc.memory_info().rss
+            with proc.oneshot():
+                total += proc.memory_info().rss
+                times = proc.cpu_times()
+                cpu[proc.pid] = times.user + times.system
         except psutil.Error:
             pass
     return total
@@ -103,10 +112,10 @@ def measure(kind, archive, out, count):
     command = [sys.executable, __file__, "_phase", kind, str(archive), str(out), str(count)]
     proc = subprocess.Popen(command, stdout=subprocess.PIPE, text=True,
                             env=dict(os.environ, OMP_NUM_THREADS="1"))
-    watched, peak = psutil.Process(proc.pid), 0
+    watched, peak, cpu = psutil.Process(proc.pid), 0, {}
     while proc.poll() is None:
         try:
-            peak = max(peak, _tree_rss(watched))
+            peak = max(peak, _sample(watched, cpu))
         except psutil.Error:
             pass
         time.sleep(0.1)
@@ -114,7 +123,8 @@ def measure(kind, archive, out, count):
     if proc.returncode != 0:
         raise SystemExit(f"{kind} run failed (exit {proc.returncode})")
     result = json.loads(stdout.strip().splitlines()[-1])
-    result.update(peak_mib=peak / 2**20, rate=result["maps"] / result["seconds"])
+    result.update(peak_mib=peak / 2**20, rate=result["maps"] / result["seconds"],
+                  cpu_per_map=sum(cpu.values()) / result["maps"])
     return result
 
 
@@ -128,7 +138,9 @@ def main(argv=None):
     archive = workdir / "archive"
     try:
         started = time.perf_counter()
-        make_archive(archive, args.maps)
+        if len(list(archive.rglob("*.nc"))) != args.maps:      # reuse a kept archive of this size
+            shutil.rmtree(archive, ignore_errors=True)
+            make_archive(archive, args.maps)
         size = sum(p.stat().st_size for p in archive.rglob("*.nc")) / 2**20
         print(f"archive: {args.maps} simulated {SHAPE[0]} x {SHAPE[1]} fans, {size:.0f} MiB, "
               f"written in {time.perf_counter() - started:.0f} s; cores available: "
@@ -141,16 +153,22 @@ def main(argv=None):
             "batch, 2 workers": measure("2", archive, workdir / "out-2", args.maps),
             f"batch, 2 workers, {half} maps": measure("2", archive, workdir / "out-half", half),
         }
-        print(f"\n{'run':32s} {'maps':>5s} {'failed':>6s} {'time s':>8s} {'maps/s':>7s} {'peak MiB':>9s}")
+        print(f"\n{'run':30s} {'maps':>5s} {'failed':>6s} {'wall s':>7s} {'maps/s':>7s} "
+              f"{'CPU s/map':>9s} {'median map s':>12s} {'peak MiB':>9s}")
         for name, r in runs.items():
-            print(f"{name:32s} {r['maps']:5d} {r['failed']:6d} {r['seconds']:8.1f} {r['rate']:7.3f} "
-                  f"{r['peak_mib']:9.0f}")
+            print(f"{name:30s} {r['maps']:5d} {r['failed']:6d} {r['seconds']:7.1f} {r['rate']:7.3f} "
+                  f"{r['cpu_per_map']:9.3f} {r['median_map_s']:12.3f} {r['peak_mib']:9.0f}")
         serial, one, two = (runs["serial, one process"], runs["batch, 1 worker"], runs["batch, 2 workers"])
         half_run = runs[f"batch, 2 workers, {half} maps"]
         overhead = (one["seconds"] - serial["seconds"]) / serial["seconds"]
         print(f"\nserial analysis time per map:            {serial['seconds'] / serial['maps']:.3f} s")
-        print(f"batch overhead per map (1 worker):        {overhead * 100:+.1f} % of it "
+        print(f"batch overhead per map (1 worker), wall:  {overhead * 100:+.1f} % of it "
               f"(target < 15 %; includes cluster start, records, table, summary)")
+        cpu_overhead = (one["cpu_per_map"] - serial["cpu_per_map"]) / serial["cpu_per_map"]
+        print(f"batch overhead per map (1 worker), CPU:   {cpu_overhead * 100:+.1f} % "
+              f"(CPU time of the whole process tree; independent of other load)")
+        print(f"analysis of one map inside a worker:      median {one['median_map_s']:.3f} s vs "
+              f"{serial['median_map_s']:.3f} s serially")
         print(f"speed-up, 2 workers over 1 worker:        {two['rate'] / one['rate']:.2f}x (target >= 1.7x)")
         print(f"speed-up, 2 workers over serial:          {two['rate'] / serial['rate']:.2f}x")
         print(f"peak memory, {two['maps']} vs {half_run['maps']} maps (2 workers): "
