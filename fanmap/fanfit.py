@@ -33,6 +33,9 @@ from .ridges import (Minima, filling_profile, find_row_minima, link_traces, log_
 __all__ = ["fit_fan"]
 
 _MIN_LINE_POINTS = 8
+#: A fan line must cross at least this many gate points over the field range; minima that
+#: stay put are the flanks of vertical (insulating) ridges, not states.
+_MIN_SWEEP_POINTS = 10
 
 
 # --- input -----------------------------------------------------------------------
@@ -90,7 +93,7 @@ def _wls(X, y, w, robust=True, iterations=4):
         if not robust:
             break
         scale = 1.4826 * np.median(np.abs(resid * np.sqrt(w))) + 1e-300
-        u = resid * np.sqrt(w) / (4.685 * scale)
+        u = np.clip(resid * np.sqrt(w) / (4.685 * scale), -2.0, 2.0)
         weights = w * np.where(np.abs(u) < 1, (1 - u**2) ** 2, 0.0)
     sw = np.sqrt(weights)
     A = X * sw[:, None]
@@ -280,8 +283,9 @@ def _fit_lines(minima, origin_rows, votes, bin_width, field, gate, dir_rows, use
     min_votes = _MIN_LINE_POINTS * np.median(votes)
     slopes = vote_slopes((minima.gate - origin_rows[minima.row]) / minima.field, votes,
                          bin_width, min_votes)
-    # Lines of (nearly) zero slope stay at V0 at every field: the neutrality ridge, not a state.
-    slopes = slopes[np.abs(slopes) * b_max > 3 * step]
+    # Lines of (nearly) zero slope stay put at every field: the flanks of the neutrality (or
+    # an insulating) ridge, not states.
+    slopes = slopes[np.abs(slopes) * b_max > _MIN_SWEEP_POINTS * step]
     slopes = _merge_close(slopes, 4 * step / b_max)  # closer lines are unresolved
     if slopes.size < 2:
         raise NoFanError("fewer than two lines through a common origin were found; the map "
@@ -293,7 +297,7 @@ def _fit_lines(minima, origin_rows, votes, bin_width, field, gate, dir_rows, use
         line = _assign(minima, origin_rows, slopes, tolerance, resolved)
         keep = _significant_lines(minima, line, slopes, origin_rows, field, gate, tolerance,
                                   resolved, band=max(1.5 * step, 3 * residual_scale))
-        keep &= np.abs(slopes) * b_max > 3 * step
+        keep &= np.abs(slopes) * b_max > _MIN_SWEEP_POINTS * step
         if keep.sum() < 2:
             raise NoFanError("fewer than two fan lines have enough resolved minima to fit; "
                              "the map shows no usable Landau fan")
@@ -428,6 +432,16 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
         line = _assign(minima, origin_rows, slopes, tolerance, resolved)
         cols, names = _nuisance_columns(minima.row, n_rows, dir_rows, use_drift, use_hysteresis)
+        free = _free_fit(minima, line, slopes.size, cols, names)
+        slopes = free["slopes"]
+        origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
+    moving = np.abs(slopes) * b_abs.max() > _MIN_SWEEP_POINTS * step
+    if not moving.all():
+        if moving.sum() < 2:
+            raise NoFanError("the minima form no fan: the lines found hardly move with field")
+        slopes = slopes[moving]
+        tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
+        line = _assign(minima, origin_rows, slopes, tolerance, resolved)
         free = _free_fit(minima, line, slopes.size, cols, names)
         slopes = free["slopes"]
         origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
@@ -599,7 +613,7 @@ def _faint_lines(logr, valid, valley, gate, field, origin_rows, slopes, step, re
     candidates = grid[dips]
     candidates = candidates[np.all(np.abs(candidates[:, None] - slopes[None, :])
                                    > 4 * step / b_max, axis=1)]
-    candidates = candidates[np.abs(candidates) * b_max > 3 * step]
+    candidates = candidates[np.abs(candidates) * b_max > _MIN_SWEEP_POINTS * step]
     if candidates.size == 0:
         return None
     sensitive = find_row_minima(logr, valid, gate, field, min_prominence=0.5 * min_prominence,
@@ -703,7 +717,7 @@ def _line_weights(line, field, nu, resid, weights, c, n_lines):
     nu_line[line] = nu
     with np.errstate(invalid="ignore", divide="ignore"):
         eps = np.where(den > 0, num / den / (c * nu_line), 0.0)
-    used = den > 0
+    used = (den > 0) & np.isfinite(eps)
     if used.sum() < 4:
         return np.ones(n_lines), np.nan
     spread = max(1.4826 * np.median(np.abs(eps[used] - np.median(eps[used]))), 2e-4)
@@ -743,6 +757,9 @@ def _fixed_fit(minima, line, fillings, n_rows, dir_rows, use_hysteresis, bootstr
         if np.allclose(new_weight, line_weight):
             break
         line_weight = new_weight
+    if not (np.all(np.isfinite(beta)) and beta[-1] > 0):
+        raise NoFanError("the named fan lines give no consistent lever arm (the joint fit "
+                         "failed); check the map, or fix the degeneracy with --material")
     result = {"v0": beta[0], "v0_err": err[0], "c": beta[-1], "c_err": err[-1],
               "points": int((weights > 0).sum()), "line_weight": line_weight,
               "line_scatter": scatter,
