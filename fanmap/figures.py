@@ -931,13 +931,13 @@ def plot_gate_maps(gate_maps, result, *, scale="auto"):
     """Raw dual-gate maps with the ridges found and the fitted n = 0 and D = 0 lines.
 
     ``gate_maps`` is one gate map or a sequence of them (one panel each, e.g.
-    several fields).  Ridge points are read from ``result.extras["ridge_points"]``
+    several fields).  Ridge points are read from ``result.ridge_points``
     (dict of ``top_gate``, ``bottom_gate`` arrays, optionally ``map`` index) when present.
     """
     maps = [gate_maps] if hasattr(gate_maps, "data_vars") else list(gate_maps)
     if not maps:
         raise InputError("no gate map to draw")
-    ridges = (result.extras or {}).get("ridge_points")
+    ridges = result.ridge_points
     columns = min(len(maps), 3)
     rows = math.ceil(len(maps) / columns)
     with rc_context(_style.rc_params()):

@@ -849,7 +849,7 @@ def fit_gates(gate_maps, *, material="auto", field=None, thickness=(None, None),
     extras["neutral_density_constant"] = (float(coef[1] / coef[2]) / ph.ELEMENTARY_CHARGE
                                           if fit["has_k"] and use_scale else None)
     extras["maps"] = [_map_details(m, fit, i) for i, m in enumerate(maps)]
-    extras["ridge_points"] = _ridge_points(maps)
+    result.ridge_points = _ridge_points(maps)
     if np.isfinite(top_off):
         curve = neutrality_curve(gate_maps[_curve_map(maps)], result,
                                  field=maps[_curve_map(maps)]["field"])

@@ -120,6 +120,8 @@ class GateResult:
     material: str = "auto"
     source: str | None = None
     version: str = ""
+    # {"top_gate": V array, "bottom_gate": V array, "map": index of the map} for figures
+    ridge_points: dict | None = field(default=None, repr=False, metadata={"json": False})
 
     def to_dict(self):
         return to_jsonable(self)
