@@ -99,21 +99,29 @@ class SpectrumModel:
 
     # --- zero-field density of states -----------------------------------------
     def _moire_segments(self):
-        """Electron-side segments (n_lo, n_hi, g_lower_half, g_upper_half, mass, gap_below)."""
+        """Electron-side segments (n_lo, n_hi, g_lower_half, g_upper_half, mass, gap_below, inward).
+
+        ``inward`` says whether the segment's upper edge (a gap) starts a fan of its own
+        towards lower density; the two fans then meet half way.  With correlated states
+        the fan from neutrality is fourfold up to the correlated gap at s = 2, the fan
+        from s = 2 is twofold outwards and meets the fourfold fan from full filling at
+        s = 3 (Cao et al., Nature 556, 43 (2018), from memory: fourfold lines from
+        neutrality, twofold from half filling pointing away from neutrality).
+        """
         n0 = self.cell_density
         m_flat, m_rem = self.effective_mass, self.remote_mass
         big = 1e30
         if self.correlated_gap > 0:
-            return [(0.0, 2 * n0, 4, 2, m_flat, 0.0),
-                    (2 * n0, 4 * n0, 2, 4, m_flat, self.correlated_gap),
-                    (4 * n0, big, 4, 4, m_rem, self.full_filling_gap)]
-        return [(0.0, 4 * n0, 4, 4, m_flat, 0.0),
-                (4 * n0, big, 4, 4, m_rem, self.full_filling_gap)]
+            return [(0.0, 2 * n0, 4, 4, m_flat, 0.0, False),
+                    (2 * n0, 4 * n0, 2, 4, m_flat, self.correlated_gap, True),
+                    (4 * n0, big, 4, 4, m_rem, self.full_filling_gap, False)]
+        return [(0.0, 4 * n0, 4, 4, m_flat, 0.0, True),
+                (4 * n0, big, 4, 4, m_rem, self.full_filling_gap, False)]
 
     def _moire_pieces(self):
         """Electron-side constant-DOS pieces (E_lo, E_hi, dos, n_lo) of the zero-field band."""
         pieces, energy = [], 0.0
-        for n_lo, n_hi, g_lo, g_hi, mass, gap in self._moire_segments():
+        for n_lo, n_hi, g_lo, g_hi, mass, gap, _ in self._moire_segments():
             energy += gap
             half = 0.5 * (n_hi - n_lo)
             for g, n_start in ((g_lo, n_lo), (g_hi, n_lo + half)):
@@ -189,6 +197,66 @@ class SpectrumModel:
         s = np.array(sorted([0.0] + fillings + [-f for f in fillings]))
         return s * self.cell_density
 
+    def _fan_origin(self, magnitude):
+        """Gap density (m^-2, electron side) whose fan the density ``magnitude`` belongs to."""
+        origin = np.zeros_like(magnitude)
+        for n_lo, n_hi, *_, inward in self._moire_segments():
+            inside = (magnitude >= n_lo) & (magnitude < n_hi)
+            own = np.where(inward & (magnitude - n_lo > n_hi - magnitude), n_hi, n_lo)
+            origin = np.where(inside, own, origin)
+        return origin
+
+    def _hall_transitions(self, flux):
+        """(n_a, n_b, count_a, count_b): levels (electron side) where the Hall count passes
+        from one fan to the next.  n_a is the last gap of the lower fan, n_b the first of
+        the upper one; the level between carries the difference of their Chern numbers."""
+        out = []
+        for n_lo, n_hi, g_lo, g_hi, _, _, inward in self._moire_segments():
+            if n_hi > 1e29:
+                continue
+            if inward:
+                mid = 0.5 * (n_lo + n_hi)
+                n_a = n_lo + g_lo * flux * (np.ceil((mid - n_lo) / (g_lo * flux)) - 1)
+                n_b = n_hi - g_hi * flux * (np.ceil((n_hi - mid) / (g_hi * flux)) - 1)
+                out.append((n_a, n_b, n_a - n_lo, n_b - n_hi))
+            else:
+                n_a = n_lo + g_lo * flux * np.floor((n_hi - n_lo) / (g_lo * flux))
+                out.append((n_a, n_hi, n_a - n_lo, 0.0))
+        return out
+
+    def hall_count(self, hall_density, field):
+        """Hall carrier count (m^-2) of a Hall density ``hall_density`` at ``field`` (T).
+
+        Counted from the gap whose fan the density belongs to, so every gap has
+        sigma_xy = t e^2/h with t its slope dn/d(eB/h) (Streda): t = 0 on a zero-field
+        gap (an insulator).  The level where one fan hands over to the next carries the
+        difference of the two fans' Chern numbers, so the count passes linearly between
+        their gaps.  Outside moire bands the count is the density itself.
+        """
+        hall_density = np.asarray(hall_density, dtype=float)
+        if self.kind != "moire":
+            return hall_density
+        mag = np.abs(hall_density)
+        count = mag - self._fan_origin(mag)
+        if abs(field) > 1e-6:
+            for n_a, n_b, c_a, c_b in self._hall_transitions(ph.flux_density_per_flavour(field)):
+                if n_b > n_a:
+                    inside = (mag > n_a) & (mag < n_b)
+                    count = np.where(inside, c_a + (c_b - c_a) * (mag - n_a) / (n_b - n_a), count)
+        return np.sign(hall_density) * count
+
+    def conducting_carriers(self, density):
+        """Density (m^-2) of the carriers that conduct at ``density`` (before puddles).
+
+        Counted from the gap whose fan the density belongs to, as the Hall count, so
+        that at low field one band of carriers gives both rho_xx and rho_xy.
+        """
+        density = np.asarray(density, dtype=float)
+        if self.kind != "moire":
+            return np.abs(density)
+        mag = np.abs(density)
+        return mag - self._fan_origin(mag)
+
     # --- Landau levels ------------------------------------------------------------
     def levels(self, field, density_range):
         """Levels at ``field`` covering ``density_range`` = (n_min, n_max).
@@ -229,14 +297,17 @@ class SpectrumModel:
         return energies, weights, nu_lo
 
     def _moire_levels(self, field, reach):
-        """Levels of a moire band: each segment fills from both edges (see module docs)."""
+        """Levels of a moire band: each segment fills from its lower edge, and from its
+        upper edge too where that edge starts a fan (see :meth:`_moire_segments`)."""
         flux = ph.flux_density_per_flavour(field)
-        energies, weights, nu_lo = [], [], []
+        energies, weights = [], []
         pieces = self._moire_pieces()
-        for k, (n_lo, n_hi, g_lo, g_hi, mass, _) in enumerate(self._moire_segments()):
+        for k, (n_lo, n_hi, g_lo, g_hi, mass, _, inward) in enumerate(self._moire_segments()):
             e_bottom = pieces[2 * k][0]
             e_top = pieces[2 * k + 1][1]
-            cap = min(0.5 * (n_hi - n_lo) / flux, reach + 8)
+            share = 0.5 if inward else 1.0
+            full = share * (n_hi - n_lo) / flux
+            cap = min(full, reach + 8)
             hw = ph.cyclotron_energy(field, mass)
             if k == 0:
                 # from neutrality: bilayer-like levels, half of the eightfold zero level on each side
@@ -246,12 +317,19 @@ class SpectrumModel:
                 count = int(cap / g_lo) + 2
                 e, g = e_bottom + hw * (np.arange(count) + 0.5), np.full(count, float(g_lo))
             low = _truncate(g, cap)
-            energies.append(e[: low.size]), weights.append(low)
-            if n_hi < 1e29:
+            e = e[: low.size]
+            if inward:
                 count = int(cap / g_hi) + 2
-                g = _truncate(np.full(count, float(g_hi)), cap)
-                e = e_top - hw * (np.arange(g.size) + 0.5)
-                energies.append(e[::-1]), weights.append(g[::-1])
+                high = _truncate(np.full(count, float(g_hi)), cap)
+                e_high = e_top - hw * (np.arange(high.size) + 0.5)
+                if cap == full:
+                    # the two cut levels where the fans meet are one level: no gap there
+                    merged = low[-1] + high[-1]
+                    centre = (low[-1] * e[-1] + high[-1] * e_high[-1]) / merged
+                    low, e = np.append(low[:-1], merged), np.append(e[:-1], centre)
+                    high, e_high = high[:-1], e_high[:-1]
+                energies.append(e_high[::-1]), weights.append(high[::-1])
+            energies.append(e), weights.append(low)
         e = np.concatenate(energies)
         g = np.concatenate(weights)
         order = np.argsort(e, kind="stable")

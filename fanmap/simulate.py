@@ -16,16 +16,19 @@ approximation; D_0 is the zero-field density of states at the pixel's density), 
     sigma_xy = e n_H mu_t (mu_t B) / (S^2 + (mu_t B)^2),
 
 with n_c = sqrt((n - n_gap)^2 + n_res^2) the carriers counted from the
-nearest zero-field gap (puddles n_res keep it finite at neutrality) and n_H the
-Hall count of a narrower extended-state band.  At low field S -> 1 and this is
+zero-field gap whose fan the density belongs to (puddles n_res keep it finite at
+neutrality) and n_H the Hall count, from the same gap, of a narrower extended-state
+band.  At low field S -> 1 and this is
 the Drude model (rho_xx = 1 / (e n mu_t), rho_xy = B / (e n)), with
 Shubnikov-de Haas oscillations rho_xx ~ rho_0 S; in a gap S -> 0 and sigma_xy
 = nu e^2/h exactly, so rho_xy sits on h / (nu e^2) and rho_xx -> 0.  R_xx =
 rho_xx L / W.  Sign convention: R_xy > 0 for electrons at positive field.
 Fractional states of the 2DEG (composite-fermion Landau levels) further scale S
 and set n_H inside the lowest two spin levels, see :mod:`fanmap._fractional`.
-Moire bands: a flat band of 4 n0 per side (split at s = +-2 by a correlated gap),
-filled from both edges, then a gap and a remote band; satellite fans follow.
+Moire bands: a flat band of 4 n0 per side, then a gap and a remote band.  With
+correlated states the flat band is split at s = +-2: a fourfold fan from neutrality
+up to s = 2, a twofold fan outwards from s = 2 meeting a fourfold fan inwards from
+s = 4 at s = 3, and a fourfold fan outwards from s = 4 (see :mod:`fanmap._levels`).
 
 Measurement artefacts (noise, drift, hysteresis, mixing, spikes, gaps,
 interrupted sweep, irregular field steps, B = 0 row, field signs) are each
@@ -146,18 +149,18 @@ def _conductivities(density, hall_density, scattering, field, model, *, mobility
     to use instead of the distance to the nearest gap.
     """
     gaps, residual = _residuals(model, residual_density)
-    nearest = np.argmin(np.abs(density[..., None] - gaps), axis=-1)
-    n_gap, n_res = gaps[nearest], residual[nearest]
+    # residual (puddle) density interpolated between the two gaps around each pixel
+    n_res = np.interp(density, gaps, residual)
     if model.kind == "2deg":
         carriers = np.clip(density, 0, None)
     else:
-        band = density - n_gap if mobile is None else mobile
+        band = model.conducting_carriers(density) if mobile is None else mobile
         carriers = np.sqrt(band**2 + n_res**2)
     omega = mobility * abs(field)
     denom = scattering**2 + omega**2
     e = ph.ELEMENTARY_CHARGE
     sxx = e * mobility * carriers * scattering / denom + leakage
-    sxy = np.sign(field) * e * (hall_density - n_gap) * mobility * omega / denom
+    sxy = np.sign(field) * e * model.hall_count(hall_density, field) * mobility * omega / denom
     if model.kind == "2deg":
         sxy = np.where(density > 0, sxy, 0.0)
     return sxx, sxy
@@ -295,7 +298,10 @@ def simulate_fan(material="graphene-monolayer", *, gate=None, field=None,
         1.8 k_B T, at a density inside the sweep -- and ``truth_*_onset_fields`` the lowest
         field (on about 60 sampled rows) where that holds.  Moire maps add
         ``truth_cell_density``, ``truth_full_filling_density``, ``truth_twist_angle_deg``,
-        ``truth_band_fillings`` and ``truth_satellites`` ("t:s,t:s").  netCDF returns
+        ``truth_band_fillings`` and ``truth_satellites`` ("t:s,t:s"): every satellite line
+        resolved (as above, on every row) over at least ``truth_satellite_min_field_range``
+        (1 T) of field inside the gate window; moire ``truth_main_fillings`` follow the
+        same rule.  netCDF returns
         one-element lists as scalars (use ``np.atleast_1d``); empty lists are stored as "".
 
     Examples
@@ -494,9 +500,13 @@ def _visible_states(model, mat, field, density, temperature, composite_fermions)
             return steps[k]
         return 0.0
 
-    main, onsets = [], []
+    main, onsets, moire_cache = [], [], {}
     for nu in main_sequence(mat, 60):
-        if model.kind == "moire" and abs(nu) * 1.0 > 12:
+        # moire: as the satellites, a neutrality line counts when resolved over a range of field
+        if model.kind == "moire" and _resolved_field_range(
+                model, field, density, temperature,
+                lambda b, nu=nu: nu * ph.flux_density_per_flavour(b),
+                moire_cache) < SATELLITE_MIN_FIELD_RANGE - 1e-9:
             continue
         b_on = _resolved_from(model, sample, dens, temperature,
                               lambda b, nu=nu: nu * ph.flux_density_per_flavour(b),
@@ -530,27 +540,69 @@ def _visible_states(model, mat, field, density, temperature, composite_fermions)
     return out
 
 
+#: A satellite line is in the truth list when it is resolved over at least this much field (T).
+SATELLITE_MIN_FIELD_RANGE = 1.0
+
+
+def _resolved_field_range(model, field, density, temperature, filling_density, cache):
+    """Field range (T) over which the spectrum has a resolved gap on the line ``filling_density(B)``.
+
+    A row counts when the line's density is inside the row's sweep and the spectrum
+    at that field has a gap exactly there of at least ONSET_GAP_RATIO times the
+    extended-state width combined with 1.8 k_B T (as :func:`_resolved_from`); each
+    counted row adds the field step around it (half way to its neighbours in |B|).
+    """
+    kt = ph.BOLTZMANN * temperature
+    span = (density.min(), density.max())
+    magnitude = np.abs(field)
+    order = np.argsort(magnitude, kind="stable")
+    steps = np.empty(field.size)
+    steps[order] = np.gradient(magnitude[order]) if field.size > 1 else 0.0
+    total, seen = 0.0, set()
+    for i in order:
+        b = magnitude[i]
+        if b < 1e-6 or b in seen:
+            continue
+        n = filling_density(b)
+        if not (density[i].min() <= n <= density[i].max()):
+            continue
+        if b not in cache:
+            energies, weights, floor = model.levels(b, span)
+            cache[b] = (floor + np.cumsum(weights), np.diff(energies, append=np.nan))
+        edges, gaps = cache[b]
+        nu = n / ph.flux_density_per_flavour(b)
+        k = np.searchsorted(edges, nu - 1e-6)
+        if not (k < edges.size and abs(edges[k] - nu) < 1e-6 and np.isfinite(gaps[k])):
+            continue
+        width = np.hypot(model.extended_fraction * model.width(b), 1.8 * kt)
+        if gaps[k] >= ONSET_GAP_RATIO * width:
+            seen.add(b)
+            total += steps[i]
+    return total
+
+
 def _moire_truth(model, twist, field, density, temperature):
+    """Moire ground truth; ``satellites`` lists every line t:s (n = t eB/h + s n0) that is
+    resolved over at least SATELLITE_MIN_FIELD_RANGE of field inside the gate window."""
     n0 = model.cell_density
     band = [-4, -2, 2, 4] if model.correlated_gap > 0 else [-4, 4]
-    satellites = []
+    cache, satellites = {}, []
+    flux_low = ph.flux_density_per_flavour(max(np.abs(field).max() / 50, 0.2))
+    reach = max(abs(density.min()), abs(density.max()))
     for s in band:
-        segment_mass, flavours = (model.remote_mass, 4) if abs(s) == 4 else \
-            (model.effective_mass, 2)
-        sequences = [(int(np.sign(s)) * k, segment_mass, flavours) for k in (1, 2, 3)]
-        inner_flavours = 4 if abs(s) == 4 else 2
-        sequences += [(-int(np.sign(s)) * k, model.effective_mass, inner_flavours)
-                      for k in (1, 2)]
-        for k, mass, g in sequences:
-            t = k * g
-            b_on = _resolved_from(model, field, density, temperature,
-                                  lambda b, t=t: s * n0 + t * ph.flux_density_per_flavour(b),
-                                  lambda b, mass=mass: ph.cyclotron_energy(b, mass))
-            if np.isfinite(b_on):
-                satellites.append(f"{t}:{s}")
+        for sign in (1, -1):              # outward (away from neutrality), inward
+            t = sign * int(np.sign(s))
+            while abs(t) * flux_low <= 2 * reach:
+                extent = _resolved_field_range(
+                    model, field, density, temperature,
+                    lambda b, t=t, s=s: s * n0 + t * ph.flux_density_per_flavour(b), cache)
+                if extent >= SATELLITE_MIN_FIELD_RANGE - 1e-9:
+                    satellites.append(f"{t}:{s}")
+                t += sign * int(np.sign(s))
     return dict(cell_density=n0, full_filling_density=4 * n0, twist_angle_deg=twist,
                 moire_wavelength=float(ph.moire_wavelength(np.radians(twist))),
                 band_fillings=band, satellites=",".join(satellites),
+                satellite_min_field_range=SATELLITE_MIN_FIELD_RANGE,
                 full_filling_gap=model.full_filling_gap, correlated_gap=model.correlated_gap)
 
 

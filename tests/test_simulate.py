@@ -198,7 +198,8 @@ def test_moire_zero_field_peaks_at_band_fillings():
 
 def test_moire_satellite_minimum_from_full_filling():
     # satellite fan n = t eB/h + s n0 (Streda; common practice for moire fans)
-    ds = simulate_fan("moire-graphene", gate=np.linspace(3, 6, 300), field=[4.0, 4.2], **CLEAN)
+    ds = simulate_fan("moire-graphene", gate=np.linspace(3, 6, 300), field=[4.0, 4.5, 5.0],
+                      **CLEAN)
     n0 = ds.attrs["truth_cell_density"]
     n = ds.attrs["truth_density_per_volt"] * (ds.gate.values - ds.attrs["truth_zero_density_voltage"])
     r = np.log(ds.rxx.values[0])
@@ -206,6 +207,46 @@ def test_moire_satellite_minimum_from_full_filling():
     target = 4 * n0 + 4 * ph.flux_density_per_flavour(4.0)
     assert np.min(np.abs(minima - target)) < 0.05 * ph.flux_density_per_flavour(4.0) * 4
     assert "4:4" in ds.attrs["truth_satellites"].split(",")
+
+
+def test_moire_fans_fourfold_from_neutrality_twofold_from_half_filling():
+    # twisted bilayer near the magic angle: Landau levels from neutrality fourfold
+    # (nu = +-4, +-8, +-12, ...), from the correlated states at s = +-2 twofold and pointing
+    # away from neutrality; the s = 2 state is insulating, sigma_xy = 0 (Cao et al., Nature
+    # 556, 43 (2018), from memory; Streda: sigma_xy = e dn/dB along a gap)
+    b = 3.0
+    ds = simulate_fan("moire-graphene", gate=np.linspace(-0.5, 4.5, 1500), field=[b], **CLEAN)
+    n0, flux = ds.attrs["truth_cell_density"], ph.flux_density_per_flavour(b)
+    n = ds.attrs["truth_density_per_volt"] * (ds.gate.values - ds.attrs["truth_zero_density_voltage"])
+    r = rho_xx(ds)[0]
+    minima = n[argrelmin(np.log(r), order=3)[0]]
+    from_neutrality = minima[(minima > 0.1 * n0) & (minima < 1.95 * n0)] / flux
+    assert from_neutrality.size >= 4
+    assert np.allclose(from_neutrality, 4 * np.round(from_neutrality / 4), atol=0.15)
+    assert np.unique(np.round(from_neutrality / 4)).size == from_neutrality.size
+    from_half = (minima[(minima > 2.05 * n0) & (minima < 2.9 * n0)] - 2 * n0) / flux
+    assert from_half.size >= 3 and np.all(from_half > 0)
+    assert np.allclose(from_half, 2 * np.round(from_half / 2), atol=0.15)
+    # plateau of the outward t = 2 line at h / (2 e^2) (von Klitzing; R_K from scipy.constants)
+    line = np.argmin(np.abs(n - (2 * n0 + 2 * flux)))
+    assert ds.rxy.values[0, line] == pytest.approx(R_K / 2, rel=0.005)
+    at_half = np.argmin(np.abs(n - 2 * n0))
+    rxx, rxy = r[at_half], ds.rxy.values[0, at_half]
+    assert abs(rxy / (rxx**2 + rxy**2)) * R_K < 0.05 and rxx > 10 * np.median(r)
+    # one row spans no field range, so no satellite is listed as resolved
+    assert ds.attrs["truth_satellites"] == ""
+
+
+def test_moire_truth_lists_the_lines_resolved_over_a_field_range():
+    # truth_satellites holds exactly the lines with a resolved gap over >= 1 T inside the window
+    field = np.linspace(0.5, 6.0, 23)
+    ds = simulate_fan("moire-graphene", gate=np.linspace(-6, 6, 200), field=field, **CLEAN)
+    truth = set(ds.attrs["truth_satellites"].split(","))
+    assert {"2:2", "4:2", "-2:-2", "4:4", "8:4", "-4:4"} <= truth
+    assert not any(item.endswith(":2") and item.startswith("-") for item in truth)  # no inward s=2
+    # a line that only clips the window's corner (t = 40 from full filling) is not listed
+    assert "40:4" not in truth
+    assert float(ds.attrs["truth_satellite_min_field_range"]) == 1.0
 
 
 def test_gate_map_neutrality_line_and_gap_growing_with_displacement():
