@@ -475,6 +475,10 @@ def test_gates_command_writes_json_and_nd_netcdf(tmp_path, capsys):
         assert "displacement_convention" in nd.attrs
     printed = capsys.readouterr().out
     assert "top capacitance" in printed and "caution" in printed
+    # the command ends with where the report and the (n, D) netCDF files are
+    last = printed.strip().splitlines()[-3:]
+    assert last[0] == f"report: {out_dir / 'report.html'}"
+    assert [line.split(": ", 1)[1] for line in last[1:]] == [str(p) for p in nd_files]
 
 
 def test_gates_command_error_writes_nothing(tmp_path, capsys):

@@ -169,7 +169,13 @@ def run(args):
         if nd_maps is not None:
             principal = nd_maps[result.extras.get("neutrality_curve", {}).get("map", 0)]
         written.update(write_gate_outputs(out, maps, result, principal))
-        print(f"wrote {len(written)} files to {out}")
     print("")
     print("\n".join(f"caution: {c}" for c in CAUTIONS))
+    if args.out:
+        # last, so that the paths are what the user sees when the command ends
+        print(f"wrote {len(written)} files to {out}")
+        if "report.html" in written:
+            print(f"report: {written['report.html']}")
+        for name in sorted(n for n in written if n.endswith(".nc")):
+            print(f"(n, D) map (netCDF): {written[name]}")
     return 0
