@@ -592,6 +592,8 @@ class BatchOutcome:
     failed: int
     outputs: dict
     elapsed: float
+    #: seconds spent on "analysis" (cluster start and every map) and "outputs" (table, summary)
+    timings: dict = dataclasses.field(default_factory=dict)
 
 
 def default_workers():
@@ -759,6 +761,7 @@ def _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_f
                             "; no dashboard (it needs the bokeh package)"))
             _run_distributed(client, work, finish, max_in_flight or 2 * threads)
     progress.show(final=True)
+    analysed_at = time.perf_counter()
 
     rows = _assemble(jobs, keys, out_dir)
     written = write_results_table(rows, out_dir)
@@ -769,9 +772,11 @@ def _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_f
         except Exception as exc:  # the table and summary are written; say what is missing
             progress.say(f"warning: the HTML index was not written ({_describe_error(exc)}); "
                          f"the results table and summary figure are complete")
+    finished = time.perf_counter()
     return BatchOutcome(out_dir=out_dir, maps=len(jobs), analysed=progress.done, resumed=progress.resumed,
                         failed=sum(r["status"] != "ok" for r in rows), outputs=written,
-                        elapsed=time.perf_counter() - started)
+                        elapsed=finished - started,
+                        timings={"analysis": analysed_at - started, "outputs": finished - analysed_at})
 
 
 def _run_distributed(client, todo, finish, max_in_flight):
