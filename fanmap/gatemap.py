@@ -494,18 +494,14 @@ def _neutral_segment(arrays, q, k, samples=None):
     return np.linspace(lo, hi, n)
 
 
-def _ridge_envelope(arrays, q, k, reach=3, smooth=9, every=1, start=0):
-    """Log of the highest measured R near the neutrality line, along the line.
+def _ridge_heights(arrays, q, k, reach=3):
+    """Log of the highest measured R near the neutrality line on every trace, and where it is.
 
-    A ridge narrower than the gate step is sampled at a random phase by each
-    trace, so single maxima scatter far below the true height; the running
-    maximum over ``smooth`` neighbouring traces is an envelope that keeps the
-    ridge's true dependence on D.  Traces are rows or columns, whichever the
-    line crosses more squarely; ``every`` and ``start`` take every n-th trace.
-    Returns ``(bottom-gate voltages, envelope)``.
+    Traces are rows or columns, whichever the line crosses more squarely.  Returns
+    ``(bottom-gate voltages, log peak, distance)``: the distance (in grid steps) of the
+    highest pixel from the fitted line, which sets how far below the true ridge height
+    a ridge narrower than the grid step is sampled.
     """
-    from scipy.ndimage import maximum_filter1d
-
     top, bottom, values = arrays["top"], arrays["bottom"], arrays["rxx"]
     rows = q * (bottom[1] - bottom[0]) / (top[1] - top[0]) <= 1.0
     if rows:
@@ -516,16 +512,59 @@ def _ridge_envelope(arrays, q, k, reach=3, smooth=9, every=1, start=0):
         data, where = values.T, (k - top) / q
     centre = np.rint(line).astype(int)
     inside = (centre >= reach) & (centre < data.shape[1] - reach)
-    offsets = np.arange(-reach, reach + 1)
-    idx = centre[inside][:, None] + offsets[None, :]
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        peak = np.nanmax(data[np.flatnonzero(inside)[:, None], idx], axis=1)
+    idx = centre[inside][:, None] + np.arange(-reach, reach + 1)[None, :]
+    block = np.where(np.isfinite(data[np.flatnonzero(inside)[:, None], idx]),
+                     data[np.flatnonzero(inside)[:, None], idx], -np.inf)
+    best = np.argmax(block, axis=1)
+    peak = block[np.arange(best.size), best]
+    distance = np.abs(idx[np.arange(best.size), best] - line[inside])
     good = np.isfinite(peak) & (peak > 0)
-    good &= (np.arange(good.size) % every) == start
-    vb = where[inside][good]
-    envelope = maximum_filter1d(np.log(peak[good]), size=smooth, mode="nearest")
-    return vb, envelope
+    return where[inside][good], np.log(peak[good]), distance[good]
+
+
+def _sampling_fit(vb, heights, distance, degree=8):
+    """How the sampled ridge height falls with the distance of the pixel from the line.
+
+    Least squares of the heights on a smooth curve in V_b (Chebyshev, ``degree``) plus
+    a d + b d^2 in the distance d; returns the coefficients (a, b) and their covariance.
+    When the sampling phase drifts slowly along the line it is hard to tell from the
+    curve, and the covariance says so.
+    """
+    x = 2 * (vb - vb.min()) / max(np.ptp(vb), 1e-300) - 1
+    design = np.column_stack([np.polynomial.chebyshev.chebvander(x, degree), distance,
+                              distance**2])
+    coef, *_ = np.linalg.lstsq(design, heights, rcond=None)
+    resid = heights - design @ coef
+    dof = max(heights.size - design.shape[1], 1)
+    cov = np.linalg.pinv(design.T @ design) * np.sum(resid**2) / dof
+    return coef[-2:], cov[-2:, -2:]
+
+
+def _corrected_ridge(vb, heights, distance, coef, smooth=5):
+    """Ridge heights brought to the line (sampling loss ``coef`` removed), lightly smoothed."""
+    from scipy.ndimage import median_filter
+
+    corrected = heights - coef[0] * distance - coef[1] * distance**2
+    return vb, median_filter(corrected, size=smooth, mode="nearest")
+
+
+def _sampling_error(vb, heights, distance, coef, cov, centre):
+    """Error (V) of the symmetry centre from the sub-pixel sampling of the ridge.
+
+    Measured from the data: the centre moves when the fitted sampling loss is varied
+    by its standard errors (along both principal directions of its covariance), and
+    half of the change made by the correction itself is kept as a model error.
+    """
+    raw = ridges.symmetry_centre(vb, _corrected_ridge(vb, heights, distance, (0.0, 0.0))[1])[0]
+    shifts = [0.5 * abs(raw - centre)] if np.isfinite(raw) else []
+    values, vectors = np.linalg.eigh(cov)
+    for value, vector in zip(values, vectors.T):
+        for sign in (1, -1):
+            trial = coef + sign * np.sqrt(max(value, 0.0)) * vector
+            c = ridges.symmetry_centre(*_corrected_ridge(vb, heights, distance, trial))[0]
+            if np.isfinite(c):
+                shifts.append(abs(c - centre))
+    return float(max(shifts)) if shifts else 0.0
 
 
 def _bottom_only_ridge(maps, q):
@@ -564,11 +603,16 @@ def _bottom_only_ridge(maps, q):
 def _neutral_point(maps, q, k):
     """Bottom-gate voltage of the neutral point where R at neutrality is even in D."""
     estimates = []
-    preferred = [m for m in maps if m["mode"] == "neutrality"] or maps
-    for m in preferred:
+    for m in maps:      # zero-field and fixed-field maps alike, each with its own error
         pts = None if m["mode"] == "neutrality" else m.get("neutral_points")
         if m["mode"] == "neutrality":
-            vb, values = _ridge_envelope(m["arrays"], q, k)
+            # A ridge narrower than the grid step is sampled below its height by an amount
+            # set by the pixel's distance from the line: fitted and removed first.
+            heights = _ridge_heights(m["arrays"], q, k)
+            if heights[0].size < 15:
+                continue
+            sampling = _sampling_fit(*heights)
+            vb, values = _corrected_ridge(*heights, sampling[0])
         elif pts is not None:
             # Leave out points off the line (a crossing contact feature, say).
             u = pts["top"] + q * pts["bottom"]
@@ -595,12 +639,15 @@ def _neutral_point(maps, q, k):
             # The two estimates' disagreement is a measure of what the error bar misses.
             stderr = float(np.hypot(stderr, 0.5 * (centre - lowest[0])))
             if m["mode"] == "neutrality":
-                # So is the spread between the odd and even traces (sampled at other phases).
-                halves = [ridges.symmetry_centre(*_ridge_envelope(m["arrays"], q, k, every=2,
-                                                                  start=j))[0] for j in (0, 1)]
-                if np.all(np.isfinite(halves)):
-                    stderr = max(stderr, 0.5 * abs(halves[0] - halves[1]))
-                m["symmetry"]["halves"] = halves
+                sub_pixel = _sampling_error(*heights, *sampling, centre)
+                stderr = float(np.hypot(stderr, sub_pixel))
+                m["symmetry"]["sub_pixel_stderr"] = sub_pixel
+            # So is the spread between the odd and even traces (other sampling phases, other
+            # noise).
+            halves = [ridges.symmetry_centre(vb[j::2], values[j::2])[0] for j in (0, 1)]
+            if np.all(np.isfinite(halves)):
+                stderr = max(stderr, 0.5 * abs(halves[0] - halves[1]))
+            m["symmetry"]["halves"] = halves
             estimates.append((centre, stderr, "symmetry"))
         else:
             estimates.append((lowest[0], lowest[1], "minimum"))
@@ -611,7 +658,9 @@ def _neutral_point(maps, q, k):
     centre = np.sum(weights * values) / weights.sum()
     stderr = np.sqrt(1.0 / weights.sum())
     if values.size > 1:
-        stderr = max(stderr, np.std(values, ddof=1) / np.sqrt(values.size))
+        # estimates that disagree beyond their errors widen the error (Birge ratio)
+        chi2 = np.sum(weights * (values - centre) ** 2) / (values.size - 1)
+        stderr *= np.sqrt(max(chi2, 1.0))
     how = {e[2] for e in estimates}
     return float(centre), float(stderr), ("symmetry" if how == {"symmetry"} else "minimum")
 
