@@ -26,9 +26,10 @@ from fanmap.physics import lever_arm_from_dielectric
 from fanmap.simulate import simulate_fan, simulate_gate_map, write_map
 
 #: Lever arms of the archive's fans: 285 nm SiO2 (eps_r 3.9, common practice) times a
-#: per-map factor, spaced by more than the fit's error so every row must find its own map.
+#: per-map factor; each map also has its own V0 (0.1 V apart, far more than the fit's
+#: error), so a row that landed on the wrong map would show.
 BASE_ALPHA = float(lever_arm_from_dielectric(285e-9, 3.9))
-FACTORS = (0.62, 0.68, 0.74, 0.80, 0.86, 0.92, 0.98, 1.04, 1.10, 1.16)
+FACTORS = tuple(round(0.98 + 0.02 * k, 2) for k in range(10))
 
 
 def make_fans(folder, count, start=0):
@@ -62,10 +63,10 @@ def make_bad_files(folder):
     return sorted(folder / name for name in [*bad, "truncated.nc"])
 
 
-def truth_alpha(path):
+def truth(path, name="density_per_volt"):
     import xarray as xr
     with xr.open_dataset(path) as ds:
-        return float(ds.attrs["truth_density_per_volt"])
+        return float(ds.attrs[f"truth_{name}"])
 
 
 def settings(**options):
@@ -115,8 +116,9 @@ def test_local_cluster_analyses_every_good_map_and_reports_every_bad_one(tmp_pat
     for path in good:
         row = by_path[str(path)]
         assert row["status"] == "ok", row["error"]
-        # Each row holds its own map's lever arm (the simulator's truth), not a neighbour's.
-        assert row["density_per_volt"] == pytest.approx(truth_alpha(path), rel=0.025)
+        # Each row holds its own map's lever arm and V0 (the simulator's truth), not a neighbour's.
+        assert row["density_per_volt"] == pytest.approx(truth(path), rel=0.03)
+        assert row["zero_density_voltage"] == pytest.approx(truth(path, "zero_density_voltage"), abs=0.03)
         # Content hash: sha256 of the file bytes (FIPS 180-4, via hashlib).
         assert row["content_sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
         assert json.loads((out / "maps" / row["map"] / "result.json").read_text())["density_per_volt"] == \
@@ -186,7 +188,8 @@ def test_killed_run_resumes_to_the_same_table_row_by_row(tmp_path):
         archive.jobs_for_paths(found, root, archive.map_settings(
             material="graphene-monolayer", figures=False, analyses={"gates": False, "crosschecks": False})),
         tmp_path / "reference", workers=0, summary=False, stream=None)
-    assert reference.failed == 4
+    junk = [row for row in read_results_table(tmp_path / "reference" / "results.csv") if "junk" in row["path"]]
+    assert len(junk) == 4 and all(row["status"] == "failed" for row in junk)
     with open(out / "results.csv", newline="") as a, \
             open(tmp_path / "reference" / "results.csv", newline="") as b:
         resumed_rows, reference_rows = list(csv.DictReader(a)), list(csv.DictReader(b))
@@ -217,7 +220,7 @@ def test_resume_reanalyses_changed_files_and_retries_failures_on_request(tmp_pat
     changed = archive.run_batch(jobs, tmp_path / "out", workers=0, resume=True, summary=False, stream=None)
     assert (changed.analysed, changed.resumed) == (1, 2)
     row = rows_by_path(read_results_table(tmp_path / "out" / "results.csv"))[str(maps[0])]
-    assert row["density_per_volt"] == pytest.approx(BASE_ALPHA * 1.1, rel=0.025)
+    assert row["density_per_volt"] == pytest.approx(BASE_ALPHA * 1.1, rel=0.03)
     # Other settings are other results; failures are kept unless a retry is asked for.
     other = archive.jobs_for_paths(found, root, settings(gate_range=(-35, 35)))
     assert archive.run_batch(other, tmp_path / "out", workers=0, resume=True, summary=False,
@@ -277,7 +280,8 @@ def test_scheduler_address_runs_the_batch_on_that_cluster(tmp_path, loopback_clu
     assert len(rows) == 4
     for path in maps:
         assert rows[str(path)]["status"] == "ok"
-        assert rows[str(path)]["density_per_volt"] == pytest.approx(truth_alpha(path), rel=0.025)
+        assert rows[str(path)]["zero_density_voltage"] == pytest.approx(truth(path, "zero_density_voltage"),
+                                                                        abs=0.03)
     assert rows[str(tmp_path / "archive" / "empty.h5")]["status"] == "failed"
 
 

@@ -45,8 +45,8 @@ def _lever_arm(dielectric):
     return float(parallel_plate_capacitance(*dielectric)) / ELEMENTARY_CHARGE
 
 
-def _fan(material, gate_span, field_span, size, alpha, v0, seed, start_time, **options):
-    n_gate, n_field = SIZES[size]
+def _fan(material, gate_span, field_span, size, alpha, v0, seed, start_time, grid=None, **options):
+    n_gate, n_field = grid or SIZES[size]
     fan = simulate_fan(material, gate=np.linspace(*gate_span, n_gate),
                        field=np.linspace(*field_span, n_field), density_per_volt=alpha,
                        zero_density_voltage=v0, seed=seed, **options)
@@ -79,12 +79,12 @@ def make_demo_archive(folder=HERE / "demo-archive", size="small"):
         return path
 
     # KR-12: V0 drifts slowly within a cooldown and jumps between cooldowns.
-    for cooldown, v0s, day in (("CD3", (2.10, 2.18), "2026-02-1"), ("CD4", (3.38,), "2026-03-0")):
+    for cooldown, v0s, day in (("CD3", (0.60, 0.68), "2026-02-1"), ("CD4", (1.90,), "2026-03-0")):
         for k, v0 in enumerate(v0s):
             fan = _fan("graphene-monolayer", (-40, 40), (2.0, 12.0), size, alpha_sio2, v0,
                        seed=100 + 10 * k + len(written), start_time=f"{day}{k + 2}T14:30:00Z")
             put(fan, f"KR-12/{cooldown}/fan_{day}{k + 2}.nc")
-    crashed = put(_fan("graphene-monolayer", (-40, 40), (2.0, 12.0), size, alpha_sio2, 3.45, seed=7,
+    crashed = put(_fan("graphene-monolayer", (-40, 40), (2.0, 12.0), size, alpha_sio2, 1.95, seed=7,
                        start_time="2026-03-05T09:10:00Z"), "KR-12/CD4/fan_2026-03-05_crashed.nc")
     data = crashed.read_bytes()
     crashed.write_bytes(data[: len(data) // 2])
@@ -106,8 +106,9 @@ def make_demo_archive(folder=HERE / "demo-archive", size="small"):
                                   top_offset=0.08, bottom_offset=-1.5, seed=seed)
         gates.attrs["start_time"] = f"2026-03-10T{hour}:00:00Z"
         put(gates, f"KR-19/gates_2026-03-10_{field:.0f}T.nc")
+    # (the bilayer's fourfold levels need a finer grid than the small size to be resolved)
     back_fan = _fan("graphene-bilayer", (-40, 40), (1.0, 12.0), size, alpha_sio2, -1.5, seed=501,
-                    start_time="2026-03-11T10:00:00Z")
+                    start_time="2026-03-11T10:00:00Z", grid=(251, 80) if size == "small" else None)
     csv_path = folder / "KR-19/backgate_fan_2026-03-11.csv"
     _write_lab_csv(back_fan, csv_path)
     written.append(csv_path)
