@@ -125,9 +125,12 @@ def score(fan_map, result, determinable, baseline):
         "alpha_error": result.density_per_volt / alpha_true - 1,
         "v0_error": (result.zero_density_voltage - float(a["truth_zero_density_voltage"])) / span,
         "alpha_stderr": result.density_per_volt_stderr / alpha_true,
+        "alpha_cov": result.density_per_volt_covariance_stderr / alpha_true,
         "alpha_boot": result.density_per_volt_bootstrap_stderr / alpha_true,
-        "alpha_scatter": result.extras.get("density_per_volt_line_scatter_relative_stderr",
-                                           float("nan")),
+        "alpha_sys": result.density_per_volt_systematic / alpha_true,
+        "v0_stderr": result.zero_density_voltage_stderr / span,
+        "v0_pull": abs(result.zero_density_voltage - float(a["truth_zero_density_voltage"]))
+        / result.zero_density_voltage_stderr,
         "scale_from": result.scale_from,
         "baseline_alpha_error": baseline[0] / alpha_true - 1,
         "baseline_v0_error": (baseline[1] - float(a["truth_zero_density_voltage"])) / span,
@@ -141,10 +144,14 @@ def score(fan_map, result, determinable, baseline):
                            and abs(cands[g] / alpha_true - 1) < ALPHA_TARGET)
         row["alpha_ok"] = row["names_ok"]
         row["alpha_error"] = cands.get(g, np.nan) / alpha_true - 1
+        # candidates carry the total error of alpha / g times g
+        row["alpha_stderr"] = next((c["density_per_volt_stderr"] for c in result.scale_candidates
+                                    if c["degeneracy"] == g), np.nan) / alpha_true
     else:
         row["names_ok"] = names_ok
         row["alpha_ok"] = abs(row["alpha_error"]) < ALPHA_TARGET
     row["v0_ok"] = abs(row["v0_error"]) < V0_TARGET
+    row["alpha_pull"] = abs(row["alpha_error"]) / row["alpha_stderr"]
     inserted = _fractions(a.get("truth_fractional_fillings"))
     observable = observable_fractions(fan_map) if inserted else set()
     found = {Fraction(s.filling) for s in result.states if s.kind == "fractional"}
@@ -162,7 +169,8 @@ def run(cases=CASES, out=sys.stdout):
     from _baseline import baseline_fit
 
     rows = []
-    print(f"{'case':38s} {'d alpha':>9s} {'(stderr,boot,lines)':>23s} {'dV0/span':>9s} {'g,Berry':>7s} "
+    print(f"{'case':38s} {'d alpha':>9s} {'(cov,boot,sys)':>23s} {'pull':>5s} {'dV0/span':>9s} "
+          f"{'pull':>5s} {'g,Berry':>7s} "
           f"{'scale':>15s} {'frac f/obs':>10s} {'false':>5s} {'time':>6s} | "
           f"{'base d alpha':>12s} {'base dV0':>9s}", file=out)
     for name, sim, fit, determinable in cases:
@@ -176,9 +184,9 @@ def run(cases=CASES, out=sys.stdout):
         row = score(fan_map, result, determinable, base)
         row.update(name=name, time=elapsed, shape=fan_map["rxx"].shape)
         rows.append(row)
-        print(f"{name:38s} {row['alpha_error']:+9.4%} ({row['alpha_stderr']:.1e},{row['alpha_boot']:.1e},"
-              f"{row['alpha_scatter']:.1e})"
-              f" {row['v0_error']:+9.4%} {'ok' if row['names_ok'] else 'NO':>7s} "
+        print(f"{name:38s} {row['alpha_error']:+9.4%} ({row['alpha_cov']:.1e},{row['alpha_boot']:.1e},"
+              f"{row['alpha_sys']:.1e}) {row['alpha_pull']:5.1f}"
+              f" {row['v0_error']:+9.4%} {row['v0_pull']:5.1f} {'ok' if row['names_ok'] else 'NO':>7s} "
               f"{row['scale_from']:>15s} {row['found']:>4d}/{row['observable']:<5d} "
               f"{len(row['false']):>5d} {elapsed:5.2f}s | {row['baseline_alpha_error']:+12.3%} "
               f"{row['baseline_v0_error']:+9.3%}", file=out)
@@ -201,6 +209,13 @@ def run(cases=CASES, out=sys.stdout):
           f"median |dV0|/span {np.nanmedian([abs(r['v0_error']) for r in rows]):.4%}; "
           f"time per map: median {np.median([r['time'] for r in rows]):.2f} s, "
           f"max {max(r['time'] for r in rows):.2f} s", file=out)
+    a_pull = np.array([r["alpha_pull"] for r in rows])
+    v_pull = np.array([r["v0_pull"] for r in rows])
+    print(f"pulls |d|/sigma <= 3: alpha {int(np.sum(a_pull <= 3))}/{n}, "
+          f"V0 {int(np.sum(v_pull <= 3))}/{n}; median pull alpha {np.nanmedian(a_pull):.2f}, "
+          f"V0 {np.nanmedian(v_pull):.2f}; median sigma: alpha "
+          f"{np.nanmedian([r['alpha_stderr'] for r in rows]):.1e} relative, V0 "
+          f"{np.nanmedian([r['v0_stderr'] for r in rows]):.1e} of span", file=out)
     print(f"baseline: alpha within {ALPHA_TARGET:.1%}: {base_ok}/{n}; V0 within target: {base_v0}/{n}; "
           f"median |d alpha| {np.nanmedian([abs(r['baseline_alpha_error']) for r in rows]):.3%}",
           file=out)

@@ -82,12 +82,9 @@ def score(fan_map, result):
     truth = truth_satellites(fan_map, MIN_FIELD_RANGE)
     bands = set(int(s) for s in np.atleast_1d(attrs.get("truth_band_fillings", [])))
     sl = result.superlattice
+    # (when the main fit took a satellite family for its origin, its states come back
+    # relabelled as satellites)
     found = {(int(s.filling), s.band_filling) for s in result.states if s.kind == "satellite"}
-    if sl and sl.get("main_fit_origin_band_filling"):
-        # the main fit took a satellite family for its origin: its states are satellites
-        origin = sl["main_fit_origin_band_filling"]
-        found |= {(int(float(s.filling)), origin) for s in result.states
-                  if s.kind in ("integer", "broken-symmetry")}
     row = {
         "moire": bool(listed),
         "seen": sl is not None,

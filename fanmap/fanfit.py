@@ -239,6 +239,34 @@ def _best_origins(gate_pts, field_pts, votes, gate, bin_width, count=3):
     return np.asarray(found)
 
 
+def _central_fan(fits, step, min_share=0.3, min_lines=3):
+    """The fan at the centre of a symmetric set of fans, or None when there is none.
+
+    Moire satellites start at band fillings +-s n0 on both sides of neutrality, and a
+    satellite fan can hold as many minima as the main one.  Among the fans holding at
+    least ``min_share`` of the largest one's minima (and ``min_lines`` lines), the one with
+    the most pairs of other fans mirrored about it is neutrality; it needs at least one
+    pair, and must beat every other fan by one pair.
+    """
+    points = np.array([int((fit[1] >= 0).sum()) for fit in fits])
+    strong = [i for i, fit in enumerate(fits)
+              if points[i] >= min_share * points.max() and fit[0].size >= min_lines]
+    if len(strong) < 3:
+        return None
+    origin = np.array([float(np.median(fits[i][3])) for i in strong])
+    pairs = np.zeros(len(strong), int)
+    for k, centre in enumerate(origin):
+        others = np.delete(origin, k)
+        mirrored = 2 * centre - others
+        close = np.abs(mirrored[:, None] - others[None, :])
+        tol = np.maximum(5 * step, 0.05 * np.abs(others - centre))
+        pairs[k] = int(np.sum(np.min(close, axis=1) < tol)) // 2
+    best = int(np.argmax(pairs))
+    if pairs[best] < 1 or np.sum(pairs >= pairs[best]) > 1:
+        return None
+    return fits[strong[best]]
+
+
 def _merge_close(slopes, distance):
     """Drop vote peaks within ``distance`` of a stronger one (``slopes`` strongest first)."""
     kept = []
@@ -402,11 +430,13 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         pts = rows_of_sign[minima.row]
         if pts.sum() < 2 * _MIN_LINE_POINTS:
             raise NoFanError("too few R_xx minima in one sweep direction to find the fan")
-        found = _best_origins(minima.gate[pts], minima.field[pts], votes[pts], gate, bin_width)
+        found = _best_origins(minima.gate[pts], minima.field[pts], votes[pts], gate, bin_width,
+                              count=7 if material in ("moire-graphene", "auto") else 3)
         best_rows[rows_of_sign] = found[0]
         candidates = found if candidates is None else candidates
     # Several fans may compete (moire satellites): try the strongest few origins and keep the
-    # one whose lines hold the most minima.
+    # one whose lines hold the most minima, or, on a moire map, the centre of the symmetric
+    # pattern of fans (the satellites at +-s n0 flank neutrality).
     fits, failure = [], None
     for shift in candidates - candidates[0]:
         try:
@@ -416,8 +446,10 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
             failure = exc
     if not fits:
         raise failure
-    slopes, line, free, origin_rows, residual_scale, use_drift = max(
-        fits, key=lambda fit: int((fit[1] >= 0).sum()))
+    chosen = _central_fan(fits, step) if material in ("moire-graphene", "auto") else None
+    if chosen is None:
+        chosen = max(fits, key=lambda fit: int((fit[1] >= 0).sum()))
+    slopes, line, free, origin_rows, residual_scale, use_drift = chosen
     use_hysteresis = direction is not None
     satellite = np.zeros(0, int)
     cols, names = _nuisance_columns(minima.row, n_rows, dir_rows, use_drift, use_hysteresis)
@@ -475,7 +507,7 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     onsets = np.array([_onset(minima, line == j) for j in range(n_lines)])
     field_min = np.array([minima.field[line == j].min() for j in range(n_lines)])
     field_max = np.array([minima.field[line == j].max() for j in range(n_lines)])
-    hall = _hall_fillings(minima, line, n_lines, rxy, gate) if rxy is not None else None
+    hall = _hall_fillings(minima, line, n_lines, rxy, r, gate) if rxy is not None else None
     prior = None
     if dielectric is not None:
         thickness, permittivity = dielectric
@@ -497,8 +529,14 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     ambiguous = naming.degeneracy is None
     c, c_err = final["c"], final["c_err"]
     alpha = 1 / (FLUX_QUANTUM_SINGLE_ELECTRON * c)
-    alpha_err = alpha * c_err / c
+    alpha_cov = alpha * c_err / c
     alpha_boot = alpha * final["c_boot"] / c
+    # Systematic part, measured on the map: disagreement of independent halves, the
+    # choice of sub-pixel refinement and the scatter of the lines' own lever arms.
+    line_scatter = final["line_scatter"] if np.isfinite(final["line_scatter"]) else 0.0
+    alpha_sys = alpha * float(np.sqrt((final["c_sys"] / c) ** 2 + (final["c_refinement"] / c) ** 2
+                                      + line_scatter**2))
+    alpha_err = _total_error(alpha_cov, alpha_boot, alpha_sys)
     extras = {"main_sequence_unit": naming.unit, "main_sequence_offset": naming.offset,
               "common_slope_shift": naming.shift,
               "lines": int(n_lines), "points": int(final["points"]),
@@ -516,8 +554,11 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
             cand["density_per_volt"] = cand["degeneracy"] * alpha
             cand["density_per_volt_stderr"] = cand["degeneracy"] * alpha_err
             cand["capacitance_per_area"] = ELEMENTARY_CHARGE * cand["density_per_volt"]
-        alpha = alpha_err = alpha_boot = np.nan
-    v0_fit, v0_err, v0_boot = final["v0"], final["v0_err"], final["v0_boot"]
+        alpha = alpha_err = alpha_boot = alpha_cov = alpha_sys = np.nan
+    v0_fit, v0_cov, v0_boot = final["v0"], final["v0_err"], final["v0_boot"]
+    v0_sys = float(np.hypot(final["v0_sys"], final["v0_line_scatter"]))
+    v0_err = _total_error(v0_cov, v0_boot, v0_sys)
+    extras["systematic_splits"] = final["splits"]
 
     if not ambiguous:
         qc = _quantum_capacitance(minima, line, naming.fillings, final, quantum_capacitance,
@@ -525,8 +566,10 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         if qc is not None:
             extras["quantum_capacitance"] = qc
             if qc["significant"]:
-                alpha, alpha_err = qc["density_per_volt"], qc["density_per_volt_stderr"]
-                v0_fit, v0_err = qc["zero_density_voltage"], qc["zero_density_voltage_stderr"]
+                alpha, alpha_cov = qc["density_per_volt"], qc["density_per_volt_stderr"]
+                v0_fit, v0_cov = qc["zero_density_voltage"], qc["zero_density_voltage_stderr"]
+                alpha_err = _total_error(alpha_cov, alpha_boot, alpha_sys)
+                v0_err = _total_error(v0_cov, v0_boot, v0_sys)
                 warnings.append("the lines bend near neutrality: the quantum-capacitance term "
                                 f"(v_F = {qc['fermi_velocity']:.3g} m/s) improves the fit "
                                 "significantly; alpha is the geometric lever arm")
@@ -571,21 +614,50 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         density_per_volt_bootstrap_stderr=float(alpha_boot),
         zero_density_voltage_bootstrap_stderr=float(v0_boot),
         capacitance_per_area_stderr=float(ELEMENTARY_CHARGE * alpha_err),
+        density_per_volt_covariance_stderr=float(alpha_cov),
+        density_per_volt_systematic=float(alpha_sys),
+        zero_density_voltage_covariance_stderr=float(v0_cov),
+        zero_density_voltage_systematic=float(v0_sys),
         scale_candidates=naming.candidates, warnings=warnings, material=material,
         extras=extras, source=fan_map.attrs.get("source"), version=__version__,
         ridge_points={"field": minima.field, "gate": minima.gate, "row": minima.row,
                       "state": point_state, "weight": minima.weight, "trace": minima.trace,
                       "prominence": minima.prominence, "traces": trace_table(minima)},
     )
+    result.extras["settings"] = {
+        "material": material,
+        "dielectric": None if dielectric is None else
+        {"thickness_m": float(dielectric[0]), "relative_permittivity": float(dielectric[1]),
+         "lever_arm_prior": prior},
+        "bootstrap": int(bootstrap), "seed": int(seed), "min_prominence": float(min_prominence),
+        "quantum_capacitance": quantum_capacitance,
+        "quantum_capacitance_used": bool(extras.get("quantum_capacitance", {}).get("significant",
+                                                                                 False)),
+        "superlattice_search": bool(superlattice and material in ("moire-graphene", "auto")),
+        "use_conductivity": bool(use_conductivity),
+        "reading": fan_map.attrs.get("recognised"),
+    }
     if superlattice and material in ("moire-graphene", "auto"):
         _add_superlattice(fan_map, result, preset)
     return result
 
 
+def _total_error(covariance, bootstrap, systematic):
+    """Total standard error: the larger statistical error (covariance or bootstrap over
+    traces) and the systematic part in quadrature."""
+    statistical = covariance if not np.isfinite(bootstrap) else max(covariance, bootstrap)
+    return float(np.hypot(statistical, systematic if np.isfinite(systematic) else 0.0))
+
+
 def _concatenate(a, b):
     """One :class:`~fanmap.ridges.Minima` holding the entries of ``a`` and then ``b``."""
-    return Minima(**{name: np.concatenate([getattr(a, name), getattr(b, name)])
-                     for name in a.__dataclass_fields__})
+    def joined(name):
+        parts = [getattr(a, name), getattr(b, name)]
+        if any(part is None for part in parts):
+            parts = [a.gate if parts[0] is None else parts[0],
+                     b.gate if parts[1] is None else parts[1]]
+        return np.concatenate(parts)
+    return Minima(**{name: joined(name) for name in a.__dataclass_fields__})
 
 
 def _faint_lines(logr, valid, valley, gate, field, origin_rows, slopes, step, residual_scale,
@@ -678,17 +750,24 @@ def _onset(minima, on_line):
     return float(np.percentile(minima.field[long if long.sum() >= 5 else on_line], 5))
 
 
-def _hall_fillings(minima, line, n_lines, rxy, gate):
-    """|nu| = R_K / |R_xy| along each line (median over its upper-field half)."""
+def _hall_fillings(minima, line, n_lines, rxy, rxx, gate):
+    """|nu| = R_K / |R_xy| along each line, median over its best-developed third.
+
+    R_xy is quantised where R_xx vanishes: the third of a line's minima with the lowest
+    R_xx counts (usually its high-field part; in a moire map a line that runs into a
+    satellite family's region is taken where it is still its own).
+    """
     out = np.full(n_lines, np.nan)
     column = np.clip(np.searchsorted(gate, minima.gate), 0, gate.size - 1)
     values = np.abs(rxy[minima.row, column])
+    depth = np.abs(rxx[minima.row, column])
     for j in range(n_lines):
         pts = np.flatnonzero(line == j)
         if pts.size < 4:
             continue
-        upper = pts[minima.field[pts] >= np.median(minima.field[pts])]
-        v = values[upper]
+        d = np.where(np.isfinite(depth[pts]), depth[pts], np.inf)
+        best = pts[d <= np.percentile(d, 100 / 3)]
+        v = values[best]
         v = v[np.isfinite(v) & (v > 0)]
         if v.size >= 3:
             out[j] = VON_KLITZING / np.median(v)
@@ -770,6 +849,18 @@ def _fixed_fit(minima, line, fillings, n_rows, dir_rows, use_hysteresis, bootstr
         key = "zero_density_voltage_drift" if name == "drift" else "hysteresis_shift"
         result["nuisance"][key] = float(beta[i])
         result["nuisance"][key + "_stderr"] = float(err[i])
+    result.update(_split_systematics(X, y, weights, nu[sel], minima.field[sel],
+                                     dir_rows[rows[sel]], beta, err))
+    # How far the choice of sub-pixel refinement moves V0 and c: the same fit on the
+    # minima refined the other way (asymmetric dips shift all minima of a line alike).
+    result["v0_refinement"], result["c_refinement"] = 0.0, 0.0
+    if minima.gate_alternative is not None:
+        y_alt = minima.gate_alternative[sel]
+        sw = np.sqrt(weights)
+        b_alt, *_ = np.linalg.lstsq(X * sw[:, None], y_alt * sw, rcond=None)
+        if np.all(np.isfinite(b_alt)):
+            result["v0_refinement"] = float(abs(b_alt[0] - beta[0]))
+            result["c_refinement"] = float(abs(b_alt[-1] - beta[-1]))
     result["v0_boot"], result["c_boot"] = np.nan, np.nan
     if bootstrap:
         groups = _groups(minima, line)[sel]
@@ -790,6 +881,63 @@ def _fixed_fit(minima, line, fillings, n_rows, dir_rows, use_hysteresis, bootstr
             result["v0_boot"] = float(np.std(sols[:, 0], ddof=1))
             result["c_boot"] = float(np.std(sols[:, -1], ddof=1))
     return result
+
+
+def _split_systematics(X, y, weights, nu, field, direction, beta, err, min_points=20):
+    """Systematic errors of V0 and c from fits of independent halves of the points.
+
+    The points are split three ways: low- against high-field half, electron against hole
+    side, up against down sweeps.  Each half is fitted for V0 and c with the nuisance
+    terms held at the full fit's values.  Where two halves disagree by more than their
+    statistical errors allow, the excess difference, sqrt(d^2 - s1^2 - s2^2), is a
+    systematic error (the full difference: the whole map may share the halves' bias) (minima pulled off their fillings by neighbouring levels, a
+    field-dependent bend, one side of the fan sitting off); the largest over the splits is
+    kept.  Returns ``v0_sys`` and ``c_sys`` (0 where no split is possible or all agree).
+    """
+    held = y - X[:, 1:-1] @ beta[1:-1] if X.shape[1] > 2 else y
+    X2 = X[:, [0, -1]]
+    used = weights > 0
+    splits = [field >= np.median(field[used]), nu > 0]
+    if np.any(direction != 0):
+        splits.append(direction < 0)
+    out = {"v0_sys": 0.0, "c_sys": 0.0, "splits": {}}
+    # Each line's own intercept (its own slope free): their weighted scatter beyond their
+    # errors (Birge ratio above one) is a common error of V0.
+    intercepts, variances = [], []
+    for value in np.unique(nu[used]):
+        part = used & (nu == value)
+        if part.sum() < min_points or np.ptp(field[part]) <= 0:
+            continue
+        X1 = np.column_stack([np.ones(part.sum()), field[part]])
+        b, cov, *_ = _wls(X1, held[part], weights[part], robust=False)
+        if np.isfinite(cov[0, 0]) and cov[0, 0] > 0:
+            intercepts.append(b[0])
+            variances.append(cov[0, 0])
+    out["v0_line_scatter"] = 0.0
+    if len(intercepts) >= 3:
+        x, wi = np.asarray(intercepts), 1 / np.asarray(variances)
+        mean = np.sum(wi * x) / np.sum(wi)
+        birge2 = np.sum(wi * (x - mean) ** 2) / (x.size - 1)
+        out["v0_line_scatter"] = float(np.sqrt(max(birge2 - 1, 0.0) / np.sum(wi)))
+    for name, mask in zip(("field", "side", "direction"), splits):
+        halves = []
+        for part in (mask & used, ~mask & used):
+            if part.sum() < min_points or np.unique(nu[part]).size < 1 \
+                    or np.ptp(field[part]) <= 0:
+                break
+            b, cov, *_ = _wls(X2[part], held[part], weights[part], robust=False)
+            if not np.all(np.isfinite(cov)):
+                break
+            halves.append((b, np.sqrt(np.diag(cov))))
+        if len(halves) < 2:
+            continue
+        (b1, e1), (b2, e2) = halves
+        excess = np.sqrt(np.maximum((b1 - b2) ** 2 - (e1**2 + e2**2), 0.0))
+        out["splits"][name] = {"v0_difference": float(b1[0] - b2[0]),
+                               "c_relative_difference": float((b1[1] - b2[1]) / beta[-1])}
+        out["v0_sys"] = max(out["v0_sys"], float(excess[0]))
+        out["c_sys"] = max(out["c_sys"], float(excess[1]))
+    return out
 
 
 def _quantum_capacitance(minima, line, fillings, final, mode, material, berry_phase):
@@ -850,24 +998,58 @@ def _add_superlattice(fan_map, result, preset):
         result.warnings.append(f"superlattice search skipped: {exc}")
         return
     result.superlattice = finding.superlattice
-    result.states.extend(finding.satellites)
     summary = finding.superlattice or {}
-    if summary.get("main_fit_origin_band_filling") and summary.get("joint_fit"):
-        # The strongest fan started at a band filling s != 0: the joint fit of all fans
-        # holds the calibration of the device's own zero-density voltage.
-        s = summary["main_fit_origin_band_filling"]
-        result.warnings.append(
-            f"the strongest fan starts at band filling s = {s:+d}, not at neutrality; alpha "
-            "and V0 are those of the joint fit of all fans (superlattice analysis)")
-        result.extras["strongest_fan"] = {
-            "band_filling": s, "zero_density_voltage": result.zero_density_voltage,
-            "density_per_volt": result.density_per_volt}
+    origin_s = summary.get("main_fit_origin_band_filling") or 0
+    if origin_s and finding.main_states_as_satellites:
+        # The strongest fan started at a band filling s != 0: its "integer" states are
+        # satellites (t, s); the lines through neutrality come from the superlattice search.
+        result.states = [st for st in result.states if st.kind not in ("integer", "broken-symmetry")]
+        result.states.extend(finding.main_states_as_satellites)
+        result.states.extend(finding.main_fan_lines)
+        if result.material == "moire-graphene" or (preset.degeneracy and preset.flavours):
+            result.degeneracy, result.berry_phase = preset.degeneracy, preset.berry_phase
+        result.extras["main_fan_relabelled"] = (
+            f"the strongest fan starts at s = {origin_s:+d}: its lines are satellites; the "
+            f"neutrality fan holds {len(finding.main_fan_lines)} line(s)")
+    result.states.extend(finding.satellites)
+    if summary.get("joint_fit") and np.isfinite(summary.get("density_per_volt", np.nan)):
+        # The joint fit of every family (neutrality fan and satellites) holds the
+        # calibration; the fit of the fan found first is kept in the extras.
+        if origin_s:
+            result.warnings.append(
+                f"the strongest fan starts at band filling s = {origin_s:+d}, not at "
+                "neutrality; alpha and V0 are those of the joint fit of all fans")
+        result.extras["first_fan_fit"] = {
+            "band_filling": int(origin_s),
+            "density_per_volt": result.density_per_volt,
+            "density_per_volt_stderr": result.density_per_volt_stderr,
+            "zero_density_voltage": result.zero_density_voltage,
+            "zero_density_voltage_stderr": result.zero_density_voltage_stderr}
         alpha, v0 = summary["density_per_volt"], summary["zero_density_voltage"]
+        alpha_stat = summary["density_per_volt_stderr"]
+        v0_stat = summary["zero_density_voltage_stderr"]
+        # systematic: measured on the joint fit itself (line scatter, split halves)
+        alpha_sys = float(summary.get("density_per_volt_systematic", 0.0))
+        v0_sys = float(summary.get("zero_density_voltage_systematic", 0.0))
         result.density_per_volt, result.zero_density_voltage = alpha, v0
-        result.density_per_volt_stderr = summary["density_per_volt_stderr"]
-        result.zero_density_voltage_stderr = summary["zero_density_voltage_stderr"]
-        result.density_per_volt_bootstrap_stderr = float("nan")
-        result.zero_density_voltage_bootstrap_stderr = float("nan")
+        result.density_per_volt_covariance_stderr = summary.get(
+            "density_per_volt_covariance_stderr", alpha_stat)
+        result.zero_density_voltage_covariance_stderr = summary.get(
+            "zero_density_voltage_covariance_stderr", v0_stat)
+        result.density_per_volt_bootstrap_stderr = summary.get(
+            "density_per_volt_bootstrap_stderr", float("nan"))
+        result.zero_density_voltage_bootstrap_stderr = summary.get(
+            "zero_density_voltage_bootstrap_stderr", float("nan"))
+        result.density_per_volt_systematic, result.zero_density_voltage_systematic = \
+            alpha_sys, v0_sys
+        result.density_per_volt_stderr = _total_error(
+            result.density_per_volt_covariance_stderr, result.density_per_volt_bootstrap_stderr,
+            alpha_sys)
+        result.zero_density_voltage_stderr = _total_error(
+            result.zero_density_voltage_covariance_stderr,
+            result.zero_density_voltage_bootstrap_stderr, v0_sys)
+        summary["density_per_volt_stderr"] = result.density_per_volt_stderr
+        summary["zero_density_voltage_stderr"] = result.zero_density_voltage_stderr
         result.capacitance_per_area = ELEMENTARY_CHARGE * alpha
         result.capacitance_per_area_stderr = ELEMENTARY_CHARGE * result.density_per_volt_stderr
         result.density_offset = -alpha * v0

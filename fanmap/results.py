@@ -83,6 +83,11 @@ class FanResult:
     density_per_volt_bootstrap_stderr: float = float("nan")
     zero_density_voltage_bootstrap_stderr: float = float("nan")
     capacitance_per_area_stderr: float = float("nan")
+    # parts of the total *_stderr above: fit covariance and a systematic term measured on the data
+    density_per_volt_covariance_stderr: float = float("nan")
+    density_per_volt_systematic: float = float("nan")
+    zero_density_voltage_covariance_stderr: float = float("nan")
+    zero_density_voltage_systematic: float = float("nan")
     scale_candidates: list[dict] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
     material: str = "auto"

@@ -54,6 +54,10 @@ class Minima:
         Inverse variance of the position (V^-2), for the least-squares fit.
     trace : ndarray of int
         Index of the ridge trace the minimum belongs to (-1: none), see :func:`link_traces`.
+    gate_alternative : ndarray, optional
+        The position by the other sub-pixel refinement (the quarter-height midpoint for a
+        narrow dip, the parabola vertex for a wide one): the spread between the two
+        measures how far the choice of refinement moves the minima.
     """
 
     row: np.ndarray
@@ -65,13 +69,16 @@ class Minima:
     valley: np.ndarray
     weight: np.ndarray
     trace: np.ndarray
+    gate_alternative: np.ndarray | None = None
 
     def __len__(self):
         return self.row.size
 
     def take(self, index):
         """A new :class:`Minima` holding only the entries selected by ``index``."""
-        return Minima(**{name: getattr(self, name)[index] for name in self.__dataclass_fields__})
+        return Minima(**{name: (None if getattr(self, name) is None
+                                else getattr(self, name)[index])
+                         for name in self.__dataclass_fields__})
 
 
 def _absolute_noise(r):
@@ -224,7 +231,8 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
     gate = np.asarray(gate, dtype=float)
     step = float(np.median(np.diff(gate)))
     columns = np.arange(gate.size)
-    out = {name: [] for name in ("row", "field", "gate", "depth", "prominence", "width", "valley")}
+    out = {name: [] for name in ("row", "field", "gate", "depth", "prominence", "width", "valley",
+                                 "gate_alternative")}
     noises = _row_noise(logr)
     medians = np.median(logr, axis=1)
     for i, row in enumerate(logr):
@@ -237,19 +245,35 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
             continue
         if peaks.size > 2 and np.median(np.diff(peaks)) < 2 * min_separation:
             continue
+        # Dips separated by less than the detection threshold (noise on one flat floor, a
+        # clipped plateau) are one dip; a dip's width is measured between the highest
+        # points separating it from its neighbouring dips, so that distinct dips at one
+        # common floor level keep their own midpoints.
+        saddles = np.array([a + int(np.argmax(row[a:b + 1]))
+                            for a, b in zip(peaks[:-1], peaks[1:])], int)
+        barrier = row[saddles] - np.maximum(row[peaks[:-1]], row[peaks[1:]])
+        group = np.r_[0, np.cumsum(barrier >= min_prominence * noise)]
+        first = np.r_[0, np.flatnonzero(np.diff(group)) + 1]
+        last = np.r_[first[1:] - 1, peaks.size - 1]
+        rep = np.array([a + int(np.argmin(row[peaks[a:b + 1]])) for a, b in zip(first, last)])
+        bounds = np.r_[0, saddles, row.size - 1]
+        left_bases = np.maximum(props["left_bases"][rep], bounds[first])
+        right_bases = np.minimum(props["right_bases"][rep], bounds[last + 1])
+        peaks = peaks[rep]
+        props = {key: value[rep] for key, value in props.items()}
         _, _, left, right = _signal.peak_widths(-row, peaks, rel_height=_LEVEL,
                                                 prominence_data=(props["prominences"],
-                                                                 props["left_bases"],
-                                                                 props["right_bases"]))
-        pos = peaks.astype(float)
+                                                                 left_bases, right_bases))
         narrow = (right - left < 2.0) & (peaks > 0) & (peaks < row.size - 1)
-        p = peaks[narrow]
+        p = np.clip(peaks, 1, row.size - 2)
         y0, y1, y2 = row[p - 1], row[p], row[p + 1]
         curvature = y0 - 2 * y1 + y2
         with np.errstate(divide="ignore", invalid="ignore"):
             shift = np.where(curvature > 0, 0.5 * (y0 - y2) / curvature, 0.0)
-        pos[narrow] = p + np.clip(shift, -0.5, 0.5)
-        pos[~narrow] = 0.5 * (left[~narrow] + right[~narrow])
+        vertex = peaks + np.clip(shift, -0.5, 0.5)
+        midpoint = 0.5 * (left + right)
+        pos = np.where(narrow, vertex, midpoint)
+        other = np.where(narrow, midpoint, vertex)
         # Drop dips inside or touching a NaN gap (their shape is invented), and dips cut by the edge.
         lo = np.clip(np.floor(left).astype(int) - 1, 0, row.size - 1)
         hi = np.clip(np.ceil(right).astype(int) + 1, 0, row.size - 1)
@@ -263,6 +287,7 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
         out["row"].append(np.full(n, i))
         out["field"].append(np.full(n, abs(float(field[i]))))
         out["gate"].append(np.interp(pos[keep], columns, gate))
+        out["gate_alternative"].append(np.interp(other[keep], columns, gate))
         out["depth"].append(medians[i] - row[peaks[keep]])
         out["prominence"].append(props["prominences"][keep] / noise)
         out["width"].append((right - left)[keep] * abs(step))

@@ -164,7 +164,7 @@ def superlattice_geometry(cell_density, cell_density_stderr=0.0, *, flavours=4,
 # --- the analysis --------------------------------------------------------------
 
 def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
-                         lattice_constant=GRAPHENE_LATTICE_CONSTANT, max_slope=12,
+                         lattice_constant=GRAPHENE_LATTICE_CONSTANT, max_slope=24,
                          max_band_filling=None, bootstrap=300, seed=0):
     """Find satellite fans, fit the moire cell density and derive the twist angle.
 
@@ -232,6 +232,8 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
                            main_degeneracy=int(np.gcd.reduce(main_fillings))
                            if len(main_fillings) >= 3 else None)
 
+    if lattice is not None:
+        _drop_off_step_lines(lattice, lines, flavours, notes)
     rng = np.random.default_rng(seed)
     superlattice = None
     satellites, main_fan_lines, relabelled = [], [], []
@@ -710,6 +712,28 @@ def _degeneracy_mismatch(hypothesis, families, lines, flavours, main_degeneracy)
     return count
 
 
+def _drop_off_step_lines(lattice, lines, flavours, notes):
+    """Drop satellites whose slope t breaks their family's Landau-level step (in place).
+
+    Levels from neutrality and full filling (|s| = 0, flavours) keep the whole flavour
+    degeneracy, those from half filling half of it (common practice for graphene moires):
+    a line whose t is no multiple of that step is a chance alignment, mostly among the
+    steep lines where families crowd.
+    """
+    if flavours % 2:
+        return
+    dropped = []
+    for j, s in list(lattice["assigned"].items()):
+        a = abs(float(s))
+        step = flavours if a in (0, flavours) else flavours // 2 if a == flavours / 2 else None
+        if step and int(lines[j]["t"]) % step:
+            dropped.append(f"({int(lines[j]['t'])}, {_fmt_s(s)})")
+            del lattice["assigned"][j]
+    if dropped:
+        notes.append(f"{len(dropped)} line(s) left out: their slope breaks the Landau-level step "
+                     f"of their band filling {', '.join(dropped)}")
+
+
 def _twofold_at(hypothesis, level, families, lines):
     """Whether every family this reading puts at |s| = level has twofold Landau levels.
 
@@ -820,9 +844,17 @@ def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
                 th, _ = solve(sel)
             except np.linalg.LinAlgError:
                 continue
-            boot.append(th[2] / th[1])
-    result["cell_density_bootstrap_stderr"] = (float(np.std(boot, ddof=1)) if len(boot) >= 20
+            boot.append((th[2] / th[1], 1.0 / th[1], th[0]))
+    boot = np.asarray(boot).reshape(-1, 3)
+    enough = boot.shape[0] >= 20
+    result["cell_density_bootstrap_stderr"] = (float(np.std(boot[:, 0], ddof=1)) if enough
                                                else float("nan"))
+    result["density_per_volt_covariance_stderr"] = result["density_per_volt_stderr"]
+    result["zero_density_voltage_covariance_stderr"] = result["zero_density_voltage_stderr"]
+    result["density_per_volt_bootstrap_stderr"] = (float(np.std(boot[:, 1], ddof=1))
+                                                   if enough and joint else float("nan"))
+    result["zero_density_voltage_bootstrap_stderr"] = (float(np.std(boot[:, 2], ddof=1))
+                                                       if enough and joint else float("nan"))
     statistical = result["cell_density_fit_stderr"]
     result["stderr_from"] = "covariance"
     if result["cell_density_bootstrap_stderr"] > statistical:
@@ -843,6 +875,34 @@ def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
                      if len(family_n0) >= 2 else 0.0)
     result["cell_density_systematic_stderr"] = float(np.hypot(
         systematic_rel * result["cell_density"], family_spread))
+    # Systematic errors of alpha and V0: the slope scatter above, and how far independent
+    # halves of the points (low against high field, either side of each fan) disagree
+    # beyond their statistical errors.
+    alpha_sys, v0_sys = systematic_rel * result["density_per_volt"], 0.0
+    if joint:
+        xi = np.concatenate([g[1][:, 1] for g in groups])
+        b_all = xi * _PHI0
+        for mask in (np.abs(b_all) >= np.median(np.abs(b_all)), xi > 0):
+            halves = []
+            for part in (mask, ~mask):
+                if part.sum() < 20:
+                    break
+                Ap = (X[part] * wt[part, None]).T @ X[part]
+                try:
+                    th = np.linalg.solve(Ap, (X[part] * wt[part, None]).T @ y[part])
+                    cp = np.linalg.inv(Ap) * s2
+                except np.linalg.LinAlgError:
+                    break
+                halves.append((np.array([1.0 / th[1], th[0]]),
+                               np.array([np.sqrt(cp[1, 1]) / th[1] ** 2, np.sqrt(cp[0, 0])])))
+            if len(halves) < 2:
+                continue
+            (h1, e1), (h2, e2) = halves
+            excess = np.sqrt(np.maximum((h1 - h2) ** 2 - e1**2 - e2**2, 0.0))
+            alpha_sys = max(alpha_sys, float(excess[0]))
+            v0_sys = max(v0_sys, float(excess[1]))
+    result["density_per_volt_systematic"] = float(alpha_sys)
+    result["zero_density_voltage_systematic"] = float(v0_sys)
     result["cell_density_stderr"] = float(np.hypot(statistical,
                                                    result["cell_density_systematic_stderr"]))
     result["stderr_from"] += " and line scatter"
@@ -904,6 +964,10 @@ def _superlattice_dict(joint, flavours, lattice_constant, lattice, fan_result, n
         "density_per_volt_stderr": joint["density_per_volt_stderr"],
         "zero_density_voltage": joint["zero_density_voltage"],
         "zero_density_voltage_stderr": joint["zero_density_voltage_stderr"],
+        **{key: joint[key] for key in (
+            "density_per_volt_covariance_stderr", "density_per_volt_bootstrap_stderr",
+            "density_per_volt_systematic", "zero_density_voltage_covariance_stderr",
+            "zero_density_voltage_bootstrap_stderr", "zero_density_voltage_systematic")},
         "rms_residual_gate": joint["rms_residual_gate"],
         "full_filling_gate_voltages": [
             joint["zero_density_voltage"] - geometry["density"] / joint["density_per_volt"],

@@ -59,16 +59,39 @@ def _value(value, err, unit, scale=1.0, digits=4):
     return f"{text} {unit}"
 
 
+def _superlattice_lines(result):
+    """Summary lines of the superlattice: twist angle, n_s, wavelength (or what was seen)."""
+    sl = result.superlattice
+    if sl is None:
+        if result.material in ("auto", "moire-graphene") and \
+                result.extras.get("settings", {}).get("superlattice_search", True):
+            return ["superlattice         none seen (no satellite fans off the main origin)"]
+        return []
+    lines = []
+    if result.material == "auto":
+        lines.append(f"superlattice         seen: {sl.get('satellite_count', 0)} satellite line(s) "
+                     f"at band fillings s = {', '.join(str(s) for s in sl.get('band_fillings', []))}")
+    if sl.get("twist_angle_deg") is not None:
+        lines.append(f"twist angle          {_value(sl['twist_angle_deg'], sl['twist_angle_deg_stderr'], 'deg')}")
+    lines.append(f"full filling n_s     {_value(sl['density'], sl['density_stderr'], 'cm^-2', _CM2)}"
+                 f"   ({sl.get('flavours', 4)} per moire cell)")
+    lines.append(f"moire wavelength     {_value(sl['wavelength'], sl['wavelength_stderr'], 'nm', 1e9)}")
+    return lines
+
+
 def summary(result):
     """Short human-readable summary of a :class:`~fanmap.results.FanResult`."""
     lines = []
     a, ae, ab = (result.density_per_volt, result.density_per_volt_stderr,
                  result.density_per_volt_bootstrap_stderr)
     lines.append(f"lever arm alpha      {_value(a, ae, 'cm^-2 V^-1', _CM2)}"
-                 f"   ({_value(a, ae, 'm^-2 V^-1')}; bootstrap ± {ab:.2g})")
+                 f"   ({_value(a, ae, 'm^-2 V^-1')}; fit ± {result.density_per_volt_covariance_stderr:.2g}, "
+                 f"bootstrap ± {ab:.2g}, systematic ± {result.density_per_volt_systematic:.2g})")
     lines.append(f"capacitance C/A      {_value(result.capacitance_per_area, result.capacitance_per_area_stderr, 'F m^-2')}")
     lines.append(f"zero-density V0      {_value(result.zero_density_voltage, result.zero_density_voltage_stderr, 'V')}"
-                 f"   (bootstrap ± {result.zero_density_voltage_bootstrap_stderr:.2g})")
+                 f"   (fit ± {result.zero_density_voltage_covariance_stderr:.2g}, "
+                 f"bootstrap ± {result.zero_density_voltage_bootstrap_stderr:.2g}, "
+                 f"systematic ± {result.zero_density_voltage_systematic:.2g})")
     lines.append(f"degeneracy           {result.degeneracy if result.degeneracy is not None else 'undetermined'}")
     berry = {0: "0", 1: "pi", 2: "2 pi"}.get(result.berry_phase, "undetermined")
     lines.append(f"Berry phase          {berry}")
@@ -79,10 +102,13 @@ def summary(result):
     for key in ("zero_density_voltage_drift", "hysteresis_shift"):
         if key in result.extras:
             lines.append(f"{key.replace('_', ' '):20s} {_value(result.extras[key], result.extras[key + '_stderr'], 'V')}")
+    lines.extend(_superlattice_lines(result))
     lines.append("")
-    lines.append(f"{'filling':>8} {'kind':16} {'slope V/T':>11} {'points':>6} {'onset T':>8} {'B range T':>13}")
+    lines.append(f"{'filling':>8} {'s':>4} {'kind':16} {'slope V/T':>11} {'points':>6} "
+                 f"{'onset T':>8} {'B range T':>13}")
     for st in result.states:
-        lines.append(f"{st.filling:>8} {st.kind:16} {st.slope:11.5g} {st.points:6d} "
+        s = "" if st.band_filling is None else f"{st.band_filling:+g}"
+        lines.append(f"{st.filling:>8} {s:>4} {st.kind:16} {st.slope:11.5g} {st.points:6d} "
                      f"{st.onset_field:8.3g} {st.field_min:6.3g}-{st.field_max:<6.3g}")
     if result.warnings:
         lines.append("")
@@ -95,6 +121,11 @@ def run(args):
     fan_map = open_from_args(args)
     result = fit_fan(fan_map, material=args.material, dielectric=dielectric,
                      bootstrap=args.bootstrap)
+    result.extras["settings"]["reading_options"] = {
+        key: value for key, value in vars(args).items()
+        if key not in ("map", "json", "out", "run", "command", "material", "bootstrap",
+                       "dielectric_thickness", "permittivity", "check")
+        and value not in (None, [], False) and not callable(value)}
     if args.check:
         from ..crosscheck import run_crosschecks
 
@@ -113,4 +144,6 @@ def run(args):
         print(check_summary(result.crosschecks))
     print("")
     print(CAUTIONS[0])
+    if args.out:
+        print(f"report: {Path(args.out) / 'report.html'} (open it in a browser)")
     return 0
