@@ -8,8 +8,8 @@ with noise and a contact resistance that depends on the bottom gate) fitted join
 - absolute capacitances within 0.5 % (cases with a map at fixed field);
 - offsets within 0.5 % of each gate's span;
 
-with the reported standard errors beside each error, and the degeneracy and where its
-scale came from.  The SiO2 case also compares the fitted bottom capacitance with the
+with the reported standard errors beside each error, the pulls |error| / stderr, and the
+degeneracy and where its scale came from.  The SiO2 case also compares the fitted bottom capacitance with the
 parallel-plate value eps0 eps_r / d (eps_r = 3.9 for SiO2, handbook value).
 
 Run on its own: ``OMP_NUM_THREADS=1 python benchmarks/_cases_gates.py`` (a minute or two).
@@ -129,6 +129,19 @@ def run(out=sys.stdout):
               f"{_pct(row['bottom_offset_error'], row['bottom_offset_stderr'])} "
               f"{str(row['degeneracy']):>2} {row['scale_from']:>9} {row['seconds']:5.1f} "
               f"{'yes' if row['passed'] else 'NO'}", file=out)
+    print("", file=out)
+    print("pulls |error| / stated standard error (about 1 when the errors are honest):", file=out)
+    keys = ("ratio", "top", "bottom", "top_offset", "bottom_offset")
+    print(f"{'case':40} " + " ".join(f"{k:>13}" for k in keys), file=out)
+    for r in rows:
+        if "ratio_error" not in r:
+            continue
+        cells = []
+        for k in keys:
+            err, sd = r[k + "_error"], r[k + "_stderr"]
+            cells.append(f"{abs(err) / sd:13.2f}" if np.isfinite(err) and np.isfinite(sd) and sd > 0
+                         else f"{'--':>13}")
+        print(f"{r['case']:40} " + " ".join(cells), file=out)
     passed = sum(r["passed"] for r in rows)
     print(f"passed {passed}/{len(rows)} (targets: ratio {100 * RATIO_TARGET:.1f} %, capacitances "
           f"{100 * CAPACITANCE_TARGET:.1f} %, offsets {100 * OFFSET_TARGET:.1f} % of the span)",

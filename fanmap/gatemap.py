@@ -498,7 +498,7 @@ def _ridge_heights(arrays, q, k, reach=3):
     """Log of the highest measured R near the neutrality line on every trace, and where it is.
 
     Traces are rows or columns, whichever the line crosses more squarely.  Returns
-    ``(bottom-gate voltages, log peak, distance)``: the distance (in grid steps) of the
+    ``(bottom-gate voltages, log peak, offset)``: the signed offset (in grid steps) of the
     highest pixel from the fitted line, which sets how far below the true ridge height
     a ridge narrower than the grid step is sampled.
     """
@@ -517,18 +517,18 @@ def _ridge_heights(arrays, q, k, reach=3):
                      data[np.flatnonzero(inside)[:, None], idx], -np.inf)
     best = np.argmax(block, axis=1)
     peak = block[np.arange(best.size), best]
-    distance = np.abs(idx[np.arange(best.size), best] - line[inside])
+    offset = idx[np.arange(best.size), best] - line[inside]
     good = np.isfinite(peak) & (peak > 0)
-    return where[inside][good], np.log(peak[good]), distance[good]
+    return where[inside][good], np.log(peak[good]), offset[good]
 
 
 def _sampling_fit(vb, heights, distance, degree=8):
     """How the sampled ridge height falls with the distance of the pixel from the line.
 
     Least squares of the heights on a smooth curve in V_b (Chebyshev, ``degree``) plus
-    a d + b d^2 in the distance d; returns the coefficients (a, b) and their covariance.
-    When the sampling phase drifts slowly along the line it is hard to tell from the
-    curve, and the covariance says so.
+    a d + b d^2 in the distance d (grid steps); returns the coefficients (a, b) and
+    their covariance.  When the sampling phase drifts slowly along the line it is hard
+    to tell from the curve, and the covariance says so.
     """
     x = 2 * (vb - vb.min()) / max(np.ptp(vb), 1e-300) - 1
     design = np.column_stack([np.polynomial.chebyshev.chebvander(x, degree), distance,
@@ -538,6 +538,62 @@ def _sampling_fit(vb, heights, distance, degree=8):
     dof = max(heights.size - design.shape[1], 1)
     cov = np.linalg.pinv(design.T @ design) * np.sum(resid**2) / dof
     return coef[-2:], cov[-2:, -2:]
+
+
+def _zero_field_centre(arrays, q, k):
+    """Sampling-corrected ridge heights along the neutral line V_t = k - q V_b.
+
+    Returns ``(vb, curve, heights, sampling)`` (see :func:`_ridge_heights` and
+    :func:`_sampling_fit`) or None when the line crosses too few traces.
+    """
+    vb, raw, offset = _ridge_heights(arrays, q, k)
+    if vb.size < 15:
+        return None
+    heights = (vb, raw, np.abs(offset))
+    sampling = _sampling_fit(*heights)
+    return (*_corrected_ridge(*heights, sampling[0]), heights, sampling)
+
+
+def _undersampling_error(arrays, q, k, vb, curve):
+    """Error (V) of the centre of a ridge sampled coarsely against its width, from the data.
+
+    The highest pixel of a trace lies up to half a grid step from the ridge, so its value
+    is uncertain by about half the drop from it to its neighbour (measured on every trace;
+    tiny for a ridge many steps wide, large for one narrower than a step).  Where the
+    sampling phase drifts slowly along the line that uncertainty does not average out: it
+    is divided by the square root of the number of phase cycles along the line only, then
+    turned into volts by the typical slope of the ridge-height curve.  It is an
+    estimate of the scale of the error, on the cautious side.
+    """
+    top, bottom, values = arrays["top"], arrays["bottom"], arrays["rxx"]
+    rows = q * (bottom[1] - bottom[0]) / (top[1] - top[0]) <= 1.0
+    if rows:
+        line = (k - q * bottom - top[0]) / (top[1] - top[0])
+        data = values
+    else:
+        line = ((k - top) / q - bottom[0]) / (bottom[1] - bottom[0])
+        data = values.T
+    centre = np.rint(line).astype(int)
+    inside = (centre >= 1) & (centre < data.shape[1] - 1)
+    rows_in = np.flatnonzero(inside)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = np.log(data)
+    mid = z[rows_in, centre[inside]]
+    side = np.fmax(z[rows_in, centre[inside] - 1], z[rows_in, centre[inside] + 1])
+    drop = mid - side
+    drop = drop[np.isfinite(drop) & (drop > 0)]
+    if drop.size < 5:
+        return 0.0
+    phase_steps = np.diff(line[inside])
+    cycles = max(float(np.sum(np.abs(phase_steps - np.rint(phase_steps)))), 1.0)
+    amplitude = 0.5 * np.median(drop) / np.sqrt(cycles)
+    # typical slope: the curve rises over about half the line from its lowest point
+    good = np.isfinite(curve)
+    if good.sum() < 5:
+        return float(np.ptp(vb))
+    rise = np.percentile(curve[good], 95) - np.percentile(curve[good], 5)
+    slope = rise / (0.5 * np.ptp(vb[good]))
+    return float(amplitude / slope) if slope > 0 else float(np.ptp(vb))
 
 
 def _corrected_ridge(vb, heights, distance, coef, smooth=5):
@@ -608,11 +664,10 @@ def _neutral_point(maps, q, k):
         if m["mode"] == "neutrality":
             # A ridge narrower than the grid step is sampled below its height by an amount
             # set by the pixel's distance from the line: fitted and removed first.
-            heights = _ridge_heights(m["arrays"], q, k)
-            if heights[0].size < 15:
+            found = _zero_field_centre(m["arrays"], q, k)
+            if found is None:
                 continue
-            sampling = _sampling_fit(*heights)
-            vb, values = _corrected_ridge(*heights, sampling[0])
+            vb, values, heights, sampling = found
         elif pts is not None:
             # Leave out points off the line (a crossing contact feature, say).
             u = pts["top"] + q * pts["bottom"]
@@ -632,6 +687,20 @@ def _neutral_point(maps, q, k):
                          "at_edge": at_edge, "minimum": lowest}
         if lowest is None:
             continue        # no clear minimum of R(D): no displacement-field signature
+        if pts is not None:
+            # At fixed field the nu = 0 heights form a dip between the two transitions of
+            # the nu = 0 state, with plateaus outside that saturate and are sampled unevenly:
+            # the middle of the dip's flanks is the steadier estimate.
+            flanks = ridges.dip_centre(vb, values)
+            if flanks is not None:
+                halves = [ridges.dip_centre(vb[j::2], values[j::2]) for j in (0, 1)]
+                stderr = flanks[1]
+                if all(h is not None for h in halves):
+                    stderr = max(stderr, 0.5 * abs(halves[0][0] - halves[1][0]))
+                m["symmetry"]["dip_centre"] = flanks[0]
+                m["symmetry"]["dip_centre_stderr"] = stderr
+                estimates.append((flanks[0], stderr, "symmetry"))
+                continue
         symmetric = np.isfinite(centre) and not at_edge and dip < 0.5
         agree = symmetric and abs(centre - lowest[0]) < max(
             3 * np.hypot(stderr, lowest[1]), 0.03 * np.ptp(vb))
@@ -639,9 +708,10 @@ def _neutral_point(maps, q, k):
             # The two estimates' disagreement is a measure of what the error bar misses.
             stderr = float(np.hypot(stderr, 0.5 * (centre - lowest[0])))
             if m["mode"] == "neutrality":
-                sub_pixel = _sampling_error(*heights, *sampling, centre)
+                sub_pixel = np.hypot(_sampling_error(*heights, *sampling, centre),
+                                     _undersampling_error(m["arrays"], q, k, vb, values))
                 stderr = float(np.hypot(stderr, sub_pixel))
-                m["symmetry"]["sub_pixel_stderr"] = sub_pixel
+                m["symmetry"]["sub_pixel_stderr"] = float(sub_pixel)
             # So is the spread between the odd and even traces (other sampling phases, other
             # noise).
             halves = [ridges.symmetry_centre(vb[j::2], values[j::2])[0] for j in (0, 1)]
@@ -650,7 +720,11 @@ def _neutral_point(maps, q, k):
             m["symmetry"]["halves"] = halves
             estimates.append((centre, stderr, "symmetry"))
         else:
-            estimates.append((lowest[0], lowest[1], "minimum"))
+            stderr = lowest[1]
+            if m["mode"] == "neutrality":
+                stderr = float(np.hypot(stderr, _undersampling_error(m["arrays"], q, k, vb,
+                                                                     values)))
+            estimates.append((lowest[0], stderr, "minimum"))
     if not estimates:
         return None
     values = np.array([e[0] for e in estimates])
