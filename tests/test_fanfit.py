@@ -255,3 +255,66 @@ def test_simulated_fans_of_every_material(material):
         assert len(found) >= len(inserted) // 2
     main = {int(s.filling) for s in r.states if s.kind == "integer"}
     assert main <= set(int(v) for v in truth["truth_main_fillings"]) | {-int(v) for v in truth["truth_main_fillings"]}
+
+
+# --- origin choice among several fans, systematic errors, settings, command summary -----
+
+def test_central_fan_is_chosen_among_mirrored_satellite_fans():
+    # Moire satellites start at +-s n0 on both sides of neutrality (Diophantine relation,
+    # common practice); a satellite fan may hold more minima than the neutrality fan.
+    from fanmap.fanfit import _central_fan
+
+    def fake(origin, points, n_lines=4):
+        line = np.r_[np.zeros(points, int), -np.ones(10, int)]
+        return (np.ones(n_lines), line, None, np.full(5, origin), 0.01, False)
+
+    fits = [fake(2.3, 700), fake(-2.2, 705), fake(0.05, 460), fake(4.55, 460), fake(-4.45, 470)]
+    assert _central_fan(fits, step=0.03)[3][0] == 0.05
+    # a lone strong fan, or no mirrored pair, keeps the usual choice (None here)
+    assert _central_fan(fits[:2], step=0.03) is None
+    assert _central_fan([fake(0.0, 500), fake(1.0, 480), fake(3.0, 470)], step=0.03) is None
+
+
+def test_systematic_error_grows_when_the_lines_bend_at_low_field():
+    # Consistent halves give no systematic part; minima pulled by 1 % of their filling
+    # below 6 T make the low- and high-field halves disagree, and the total error covers
+    # the resulting bias of alpha.
+    straight = fit_fan(handbuilt_fan(MONOLAYER, alpha=7.2e14, v0=2.0, noise=0.005),
+                       material="graphene-monolayer", bootstrap=0)
+    ds = handbuilt_fan(MONOLAYER, alpha=7.2e14, v0=2.0, noise=0.005)
+    bent = ds.copy(deep=True)
+    low = ds.field.values < 6.0
+    # shift the low-field rows' dips outwards by resampling each row 1 % closer to V0
+    for i in np.flatnonzero(low):
+        g = ds.gate.values
+        bent["rxx"][i] = np.interp(2.0 + (g - 2.0) * 0.99, g, ds.rxx.values[i])
+    r = fit_fan(bent, material="graphene-monolayer", bootstrap=0)
+    assert straight.density_per_volt_systematic < 3 * straight.density_per_volt_covariance_stderr + \
+        2e-4 * straight.density_per_volt
+    assert r.density_per_volt_systematic > 5 * r.density_per_volt_covariance_stderr
+    assert abs(r.density_per_volt - 7.2e14) < 3 * r.density_per_volt_stderr
+    assert r.density_per_volt_stderr >= r.density_per_volt_systematic
+    assert "field" in r.extras["systematic_splits"]
+
+
+def test_settings_are_recorded():
+    r = fit_fan(handbuilt_fan(MONOLAYER), material="graphene-monolayer", bootstrap=7, seed=3,
+                dielectric=(285e-9, 3.9))
+    settings = r.extras["settings"]
+    assert (settings["material"], settings["bootstrap"], settings["seed"]) == \
+        ("graphene-monolayer", 7, 3)
+    assert settings["dielectric"]["thickness_m"] == 285e-9
+    assert settings["quantum_capacitance"] == "auto" and "quantum_capacitance_used" in settings
+
+
+def test_command_summary_names_the_report_and_the_superlattice_search(tmp_path, capsys):
+    path = tmp_path / "fan.nc"
+    handbuilt_fan(MONOLAYER, hall=True, field=(1.0, 12.0, 60)).to_netcdf(path)
+    out = tmp_path / "out"
+    assert main(["fit", str(path), "--out", str(out), "--bootstrap", "0"]) == 0
+    printed = capsys.readouterr().out
+    assert "superlattice         none seen" in printed      # material auto says what it saw
+    assert "systematic ±" in printed
+    assert printed.rstrip().endswith(f"report: {out / 'report.html'} (open it in a browser)")
+    settings = json.loads((out / "result.json").read_text())["extras"]["settings"]
+    assert settings["bootstrap"] == 0 and "reading_options" in settings
