@@ -216,6 +216,14 @@ def choose_scale(unit, gamma, main_slopes, *, hall_fillings=None, hall_slopes=No
             agree = np.abs(estimates / nearest - 1) < 0.05
             if abs(g / nearest - 1) < 0.05 and agree.sum() >= min(2, plateau.sum()):
                 if preset.degeneracy is not None and preset.degeneracy != nearest:
+                    if preset.flavours:
+                        # In a moire band the Hall density restarts at each band filling
+                        # (Cao et al., Nature 2018, from memory): R_xy along a neutrality
+                        # line that has passed a satellite family counts from that family.
+                        warnings.append(f"R_xy plateaus give degeneracy {nearest}, but in a "
+                                        "moire map the Hall count restarts at band fillings; "
+                                        f"using the preset degeneracy {preset.degeneracy}")
+                        return preset.degeneracy, "material", warnings
                     warnings.append(f"R_xy plateaus give degeneracy {nearest}, but material "
                                     f"{material!r} has {preset.degeneracy}; using R_xy")
                 return nearest, "hall", warnings

@@ -234,6 +234,10 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
 
     if lattice is not None:
         _drop_off_step_lines(lattice, lines, flavours, notes)
+        if len(lattice["assigned"]) < 2:
+            notes.append("fewer than two satellite lines keep their family's Landau-level step: "
+                         "not reported as a superlattice")
+            lattice = None
     rng = np.random.default_rng(seed)
     superlattice = None
     satellites, main_fan_lines, relabelled = [], [], []
