@@ -751,11 +751,13 @@ def _onset(minima, on_line):
 
 
 def _hall_fillings(minima, line, n_lines, rxy, rxx, gate):
-    """|nu| = R_K / |R_xy| along each line, median over its best-developed third.
+    """|nu| = R_K / |R_xy| along each line: the plateau value most of its minima sit on.
 
-    R_xy is quantised where R_xx vanishes: the third of a line's minima with the lowest
-    R_xx counts (usually its high-field part; in a moire map a line that runs into a
-    satellite family's region is taken where it is still its own).
+    R_xy is quantised where R_xx vanishes, so the points counted are those whose
+    R_K / |R_xy| lies within 0.05 of an integer; the integer holding most of them is the
+    line's filling (in a moire map a line that runs into a satellite family's region
+    takes that family's Hall count there, on fewer points).  A line with fewer than three
+    such points gets the median over the third of its minima with the lowest R_xx.
     """
     out = np.full(n_lines, np.nan)
     column = np.clip(np.searchsorted(gate, minima.gate), 0, gate.size - 1)
@@ -765,9 +767,18 @@ def _hall_fillings(minima, line, n_lines, rxy, rxx, gate):
         pts = np.flatnonzero(line == j)
         if pts.size < 4:
             continue
+        v = values[pts]
+        ok = np.isfinite(v) & (v > 0)
+        nu = VON_KLITZING / v[ok]
+        on_plateau = (nu > 0.5) & (np.abs(nu - np.round(nu)) < 0.05)
+        if on_plateau.sum() >= 3:
+            levels, counts = np.unique(np.round(nu[on_plateau]), return_counts=True)
+            best = levels[np.argmax(counts)]
+            out[j] = float(np.median(nu[on_plateau][np.round(nu[on_plateau]) == best]))
+            continue
         d = np.where(np.isfinite(depth[pts]), depth[pts], np.inf)
-        best = pts[d <= np.percentile(d, 100 / 3)]
-        v = values[best]
+        lowest = pts[d <= np.percentile(d, 100 / 3)]
+        v = values[lowest]
         v = v[np.isfinite(v) & (v > 0)]
         if v.size >= 3:
             out[j] = VON_KLITZING / np.median(v)

@@ -387,6 +387,10 @@ def name_lines(slopes, slope_stderr, onsets, *, weights=None, hall_fillings=None
     relative = s / unit
     on_main_grid = _on_grid(np.abs(relative), gamma, np.maximum(0.1, 3 * err / unit))
     preset = get_material(material)
+    # Only lines of the main sequence read the Hall scale: lines off it may be crossings of
+    # other families (moire satellites) whose R_xy counts from elsewhere.
+    if hall_fillings is not None:
+        hall_fillings = np.where(on_main_grid, np.asarray(hall_fillings, float), np.nan)
     g, scale_from, warnings = choose_scale(
         unit, gamma, s, hall_fillings=hall_fillings, hall_slopes=s, extra_slopes=s[~on_main_grid],
         extra_stderr=err[~on_main_grid], material=material, lever_arm_prior=lever_arm_prior)
