@@ -11,8 +11,13 @@
    lines that do not pass through the common origin (moiré satellites) are set aside;
 4. naming (:mod:`fanmap.naming`): main sequence, Berry phase, absolute scale;
 5. the final joint fit with the filling of every line fixed, n = alpha (V - V0),
-   nu = n h / (e B): shared alpha and V0; covariance errors and a bootstrap over traces;
+   nu = n h / (e B): shared alpha and V0; covariance errors and a bootstrap over traces,
+   and a systematic part measured on the map (independent halves: low/high field,
+   electron/hole side, sweep directions; the sub-pixel refinement; the lines' scatter);
    optionally the Dirac quantum-capacitance term, kept only when an F-test says it helps.
+6. for moire maps (material "moire-graphene" or "auto") the origin is the centre of the
+   symmetric set of fans, and the joint fit of all families
+   (:func:`fanmap.superlattice.analyse_superlattice`) gives alpha, V0 and the twist angle.
 """
 
 import numpy as np
@@ -390,6 +395,10 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     Returns
     -------
     FanResult
+        ``density_per_volt_stderr`` and ``zero_density_voltage_stderr`` are totals (the
+        larger of covariance and bootstrap, in quadrature with the measured systematic
+        part); the parts are in ``*_covariance_stderr``, ``*_bootstrap_stderr`` and
+        ``*_systematic``.  ``extras["settings"]`` records the options of the fit.
 
     Raises
     ------
