@@ -3,8 +3,6 @@
 import argparse
 import json
 
-import numpy as np
-
 from .._atomic import write_text_atomic
 from .._cautions import CAUTIONS
 from ..crosscheck import run_crosschecks
@@ -12,6 +10,7 @@ from ..errors import FanmapError, InputError
 from ..materials import MATERIAL_NAMES
 from ..results import to_jsonable
 from ._options import add_reading_options, open_from_args
+from ._format import value_with_error
 
 _CM2 = 1e-4  # m^2 per cm^2
 
@@ -58,13 +57,8 @@ def register(subparsers):
     return parser
 
 
-def _value(value, err, unit, scale=1.0):
-    if value is None or not np.isfinite(value):
-        return "not measured"
-    text = f"{value * scale:.5g}"
-    if err is not None and np.isfinite(err):
-        text += f" ± {err * scale:.2g}"
-    return f"{text} {unit}"
+def _shown(value, err, unit, scale=1.0):
+    return value_with_error(value, err, unit, scale, digits=5, missing="not measured")
 
 
 def summary(checks):
@@ -72,8 +66,8 @@ def summary(checks):
     lines = [f"{'method':12} {'lever arm alpha (cm^-2 V^-1)':>32} {'zero-density V0 (V)':>24}"]
     for row in checks["comparison"]:
         lines.append(f"{row['method']:12} "
-                     f"{_value(row['density_per_volt'], row['density_per_volt_stderr'], '', _CM2):>32} "
-                     f"{_value(row['zero_density_voltage'], row['zero_density_voltage_stderr'], ''):>24}")
+                     f"{_shown(row['density_per_volt'], row['density_per_volt_stderr'], '', _CM2):>32} "
+                     f"{_shown(row['zero_density_voltage'], row['zero_density_voltage_stderr'], ''):>24}")
     lines.append("")
     if checks["comparison_pairs"]:
         verdict = "agree" if checks["agree"] else "DISAGREE"
@@ -83,17 +77,17 @@ def summary(checks):
     if g:
         lines.append(f"oscillation density with g = {g} (from {checks['oscillation_degeneracy_from']})")
     lines.append(f"index-plot intercept gamma  "
-                 f"{_value(checks['index_plot_intercept'], checks['index_plot_intercept_stderr'], '')}"
+                 f"{_shown(checks['index_plot_intercept'], checks['index_plot_intercept_stderr'], '')}"
                  f"  (1/2: Berry phase pi; 0: 0 or 2 pi)")
-    lines.append(f"mobility (median)           {_value(checks['mobility'], None, 'cm^2 V^-1 s^-1', 1e4)}")
+    lines.append(f"mobility (median)           {_shown(checks['mobility'], None, 'cm^2 V^-1 s^-1', 1e4)}")
     mass = checks.get("effective_mass")
     if mass:
         lines.append(f"effective mass              "
-                     f"{_value(mass['effective_mass'], mass['effective_mass_stderr'], 'm_e')}")
+                     f"{_shown(mass['effective_mass'], mass['effective_mass_stderr'], 'm_e')}")
         lines.append(f"Dingle temperature          "
-                     f"{_value(mass['dingle_temperature'], mass['dingle_temperature_stderr'], 'K')}")
+                     f"{_shown(mass['dingle_temperature'], mass['dingle_temperature_stderr'], 'K')}")
         lines.append(f"quantum lifetime            "
-                     f"{_value(mass['quantum_lifetime'], mass['quantum_lifetime_stderr'], 'ps', 1e12)}")
+                     f"{_shown(mass['quantum_lifetime'], mass['quantum_lifetime_stderr'], 'ps', 1e12)}")
     if checks["warnings"]:
         lines.append("")
         lines.extend(f"warning: {w}" for w in checks["warnings"])

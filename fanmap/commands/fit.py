@@ -2,8 +2,6 @@
 
 from pathlib import Path
 
-import numpy as np
-
 from .._atomic import write_text_atomic
 from .._cautions import CAUTIONS
 from ..errors import InputError
@@ -11,6 +9,7 @@ from ..fanfit import fit_fan
 from ..materials import MATERIAL_NAMES
 from ..results import dumps
 from ._options import add_reading_options, open_from_args
+from ._format import value_with_error
 
 _CM2 = 1e-4  # m^2 per cm^2
 
@@ -50,15 +49,6 @@ def _dielectric(args):
     return args.dielectric_thickness * 1e-9, args.permittivity
 
 
-def _value(value, err, unit, scale=1.0, digits=4):
-    if value is None or not np.isfinite(value):
-        return "undetermined"
-    text = f"{value * scale:.{digits}g}"
-    if err is not None and np.isfinite(err):
-        text += f" ± {err * scale:.2g}"
-    return f"{text} {unit}"
-
-
 def _superlattice_lines(result):
     """Summary lines of the superlattice: twist angle, n_s, wavelength (or what was seen)."""
     sl = result.superlattice
@@ -72,10 +62,10 @@ def _superlattice_lines(result):
         lines.append(f"superlattice         seen: {sl.get('satellite_count', 0)} satellite line(s) "
                      f"at band fillings s = {', '.join(str(s) for s in sl.get('band_fillings', []))}")
     if sl.get("twist_angle_deg") is not None:
-        lines.append(f"twist angle          {_value(sl['twist_angle_deg'], sl['twist_angle_deg_stderr'], 'deg')}")
-    lines.append(f"full filling n_s     {_value(sl['density'], sl['density_stderr'], 'cm^-2', _CM2)}"
+        lines.append(f"twist angle          {value_with_error(sl['twist_angle_deg'], sl['twist_angle_deg_stderr'], 'deg')}")
+    lines.append(f"full filling n_s     {value_with_error(sl['density'], sl['density_stderr'], 'cm^-2', _CM2)}"
                  f"   ({sl.get('flavours', 4)} per moire cell)")
-    lines.append(f"moire wavelength     {_value(sl['wavelength'], sl['wavelength_stderr'], 'nm', 1e9)}")
+    lines.append(f"moire wavelength     {value_with_error(sl['wavelength'], sl['wavelength_stderr'], 'nm', 1e9)}")
     return lines
 
 
@@ -84,11 +74,11 @@ def summary(result):
     lines = []
     a, ae, ab = (result.density_per_volt, result.density_per_volt_stderr,
                  result.density_per_volt_bootstrap_stderr)
-    lines.append(f"lever arm alpha      {_value(a, ae, 'cm^-2 V^-1', _CM2)}"
-                 f"   ({_value(a, ae, 'm^-2 V^-1')}; fit ± {result.density_per_volt_covariance_stderr:.2g}, "
+    lines.append(f"lever arm alpha      {value_with_error(a, ae, 'cm^-2 V^-1', _CM2)}"
+                 f"   ({value_with_error(a, ae, 'm^-2 V^-1')}; fit ± {result.density_per_volt_covariance_stderr:.2g}, "
                  f"bootstrap ± {ab:.2g}, systematic ± {result.density_per_volt_systematic:.2g})")
-    lines.append(f"capacitance C/A      {_value(result.capacitance_per_area, result.capacitance_per_area_stderr, 'F m^-2')}")
-    lines.append(f"zero-density V0      {_value(result.zero_density_voltage, result.zero_density_voltage_stderr, 'V')}"
+    lines.append(f"capacitance C/A      {value_with_error(result.capacitance_per_area, result.capacitance_per_area_stderr, 'F m^-2')}")
+    lines.append(f"zero-density V0      {value_with_error(result.zero_density_voltage, result.zero_density_voltage_stderr, 'V')}"
                  f"   (fit ± {result.zero_density_voltage_covariance_stderr:.2g}, "
                  f"bootstrap ± {result.zero_density_voltage_bootstrap_stderr:.2g}, "
                  f"systematic ± {result.zero_density_voltage_systematic:.2g})")
@@ -101,7 +91,7 @@ def summary(result):
                      f"{cand['density_per_volt'] * _CM2:.4g} cm^-2 V^-1")
     for key in ("zero_density_voltage_drift", "hysteresis_shift"):
         if key in result.extras:
-            lines.append(f"{key.replace('_', ' '):20s} {_value(result.extras[key], result.extras[key + '_stderr'], 'V')}")
+            lines.append(f"{key.replace('_', ' '):20s} {value_with_error(result.extras[key], result.extras[key + '_stderr'], 'V')}")
     lines.extend(_superlattice_lines(result))
     lines.append("")
     lines.append(f"{'filling':>8} {'s':>4} {'kind':16} {'slope V/T':>11} {'points':>6} "

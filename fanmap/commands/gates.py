@@ -11,6 +11,7 @@ from ..gatemap import HBN_PERMITTIVITY, fit_gates, to_density_displacement
 from ..materials import MATERIAL_NAMES
 from ..results import dumps
 from ._options import add_reading_options, open_from_args
+from ._format import value_with_error
 
 _CM2 = 1e-4  # m^2 per cm^2
 
@@ -75,13 +76,8 @@ def _options(args):
     return {"thickness": thickness, "permittivity": tuple(eps), "gate_limits": limits}
 
 
-def _value(value, err, unit, scale=1.0, digits=5):
-    if value is None or not np.isfinite(value):
-        return "undetermined"
-    text = f"{value * scale:.{digits}g}"
-    if err is not None and np.isfinite(err):
-        text += f" ± {err * scale:.2g}"
-    return f"{text} {unit}"
+def _shown(value, err, unit, scale=1.0):
+    return value_with_error(value, err, unit, scale, digits=5)
 
 
 def summary(result):
@@ -90,13 +86,13 @@ def summary(result):
 
     r = result
     lines = [
-        f"top capacitance      {_value(r.top_capacitance, r.top_capacitance_stderr, 'F m^-2')}"
-        f"   (lever arm {_value(lever(r.top_capacitance), lever(r.top_capacitance_stderr), 'cm^-2 V^-1', _CM2)})",
-        f"bottom capacitance   {_value(r.bottom_capacitance, r.bottom_capacitance_stderr, 'F m^-2')}"
-        f"   (lever arm {_value(lever(r.bottom_capacitance), lever(r.bottom_capacitance_stderr), 'cm^-2 V^-1', _CM2)})",
-        f"ratio C_t/C_b        {_value(r.capacitance_ratio, r.capacitance_ratio_stderr, '')}",
-        f"top offset V_t0      {_value(r.top_offset, r.top_offset_stderr, 'V')}",
-        f"bottom offset V_b0   {_value(r.bottom_offset, r.bottom_offset_stderr, 'V')}",
+        f"top capacitance      {_shown(r.top_capacitance, r.top_capacitance_stderr, 'F m^-2')}"
+        f"   (lever arm {_shown(lever(r.top_capacitance), lever(r.top_capacitance_stderr), 'cm^-2 V^-1', _CM2)})",
+        f"bottom capacitance   {_shown(r.bottom_capacitance, r.bottom_capacitance_stderr, 'F m^-2')}"
+        f"   (lever arm {_shown(lever(r.bottom_capacitance), lever(r.bottom_capacitance_stderr), 'cm^-2 V^-1', _CM2)})",
+        f"ratio C_t/C_b        {_shown(r.capacitance_ratio, r.capacitance_ratio_stderr, '')}",
+        f"top offset V_t0      {_shown(r.top_offset, r.top_offset_stderr, 'V')}",
+        f"bottom offset V_b0   {_shown(r.bottom_offset, r.bottom_offset_stderr, 'V')}",
         f"degeneracy           {r.degeneracy if r.degeneracy is not None else 'undetermined'}"
         f"   (scale from {r.scale_from})",
         f"convention           {r.displacement_convention}",
