@@ -412,7 +412,6 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     n_rows = field.size
     b_abs = np.abs(field)
     step = float(np.median(np.diff(gate)))
-    span = float(gate[-1] - gate[0])
     warnings = []
 
     logr, valid = log_signal(_minima_signal(r, rxy) if use_conductivity else r)
@@ -488,7 +487,6 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
 
     # Lines that miss the common origin (moire satellites, artefacts) leave the main fit.
-    sel = free["sel"]
     own_offset = np.zeros(slopes.size)
     own_err = np.zeros(slopes.size)
     for j in range(slopes.size):

@@ -834,7 +834,7 @@ def fit_gates(gate_maps, *, material="auto", field=None, thickness=(None, None),
     fields = list(field) if np.ndim(field) else [field] * len(gate_maps)
     if len(fields) != len(gate_maps):
         raise InputError(f"{len(fields)} fields given for {len(gate_maps)} maps; give one per map")
-    mat = get_material(material)
+    get_material(material)  # refuse an unknown preset before any work
     warnings = []
     maps = []
     for i, (ds, b) in enumerate(zip(gate_maps, fields)):

@@ -23,7 +23,6 @@ Examples
 """
 
 from dataclasses import dataclass, field as _dc_field
-from pathlib import Path
 
 import numpy as np
 import xarray as xr
@@ -974,7 +973,6 @@ def _axis_line(ds, name):
     units = ds[name].attrs.get("units", "")
     if values.ndim == 0:
         return f"  {name}: {float(values):.6g} {units} (scalar)"
-    finite = values[np.isfinite(values)]
     steps = np.diff(values)
     regular = steps.size < 2 or np.allclose(steps, steps[0], rtol=1e-3, atol=0)
     step = f"step {np.median(steps):.4g} {units}" + ("" if regular else " (irregular)") \

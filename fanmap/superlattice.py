@@ -34,7 +34,7 @@ from scipy import ndimage, signal
 from . import _schema as S
 from .errors import InputError, NoFanError
 from .physics import (FLUX_QUANTUM_SINGLE_ELECTRON, GRAPHENE_LATTICE_CONSTANT,
-                      moire_wavelength, twist_angle_from_wavelength)
+                      twist_angle_from_wavelength)
 from .results import State
 
 __all__ = ["SuperlatticeFinding", "analyse_superlattice", "superlattice_geometry"]
@@ -1155,7 +1155,6 @@ def _horizontal_features(gate, fields, rxx, scale, n0, n0_sigma, notes, max_deno
     minimum[1:-1] = ((resid[1:-1] < resid[:-2]) & (resid[1:-1] <= resid[2:])
                      & (resid[1:-1] < -2.0 * noise))
     min_run = max(10, int(0.2 * gate.size))
-    step = scale.gate_step
     found = []
     for i in range(1, b.size - 1):
         row = ndimage.binary_closing(minimum[i], structure=np.ones(3))

@@ -14,7 +14,6 @@ import signal
 import subprocess
 import sys
 import time
-from pathlib import Path
 
 import numpy as np
 import psutil
@@ -184,7 +183,7 @@ def test_killed_run_resumes_to_the_same_table_row_by_row(tmp_path):
 
     # An uninterrupted run (in this process, no dask) of the same archive and settings.
     root, found = archive.find_maps(tmp_path / "archive")
-    reference = archive.run_batch(
+    archive.run_batch(
         archive.jobs_for_paths(found, root, archive.map_settings(
             material="graphene-monolayer", figures=False, analyses={"gates": False, "crosschecks": False})),
         tmp_path / "reference", workers=0, summary=False, stream=None)

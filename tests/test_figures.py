@@ -12,7 +12,6 @@ from scipy import constants
 
 from _fan_data import (ALPHA, V0, synthetic_fan, synthetic_gate_map, synthetic_gate_result,
                         synthetic_result)
-from fanmap import _schema as S
 from fanmap import _style
 from fanmap import figures as F
 from fanmap.errors import InputError

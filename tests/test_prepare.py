@@ -5,7 +5,6 @@ import pytest
 import xarray as xr
 from scipy import constants
 
-from fanmap import _schema as S
 from fanmap.errors import InputError
 from fanmap.prepare import (
     average_repeats, conductivity, despike, direction_shift, merge_directions, prepare_map,

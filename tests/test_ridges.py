@@ -1,7 +1,6 @@
 """Ridge finding on hand-built rows and maps with exact answers."""
 
 import numpy as np
-import pytest
 
 from fanmap.ridges import (filling_profile, find_row_minima, link_traces, log_signal,
                            valley_strength, vote_origin, vote_slopes)
