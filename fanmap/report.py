@@ -342,34 +342,43 @@ def _berry_text(berry):
 
 
 def _calibration_rows(result):
+    """Rows of value, total error and its parts (fit covariance, bootstrap, systematic)."""
     alpha, alpha_err = result.density_per_volt, result.density_per_volt_stderr
-    boot = result.density_per_volt_bootstrap_stderr
+    alpha_parts = (result.density_per_volt_covariance_stderr,
+                   result.density_per_volt_bootstrap_stderr, result.density_per_volt_systematic)
     cap, cap_err = result.capacitance_per_area, result.capacitance_per_area_stderr
     if not _finite(cap_err) and _finite(alpha_err):
         cap_err = ELEMENTARY_CHARGE * alpha_err
     v0, v0_err = result.zero_density_voltage, result.zero_density_voltage_stderr
-    v0_boot = result.zero_density_voltage_bootstrap_stderr
+    v0_parts = (result.zero_density_voltage_covariance_stderr,
+                result.zero_density_voltage_bootstrap_stderr, result.zero_density_voltage_systematic)
     offset = result.density_offset
     offset_err = None
     if _finite(alpha_err) and _finite(v0_err) and _finite(v0):
         offset_err = math.hypot(alpha_err * v0, alpha * v0_err)
+
+    def parts(values, scale=1.0):
+        return tuple(_num(v * scale, 2) for v in values)
+
+    no_parts = ("–", "–", "–")
     return [
-        ("lever arm α", _num(alpha / 1e4), _num(alpha_err / 1e4, 2), _num(boot / 1e4, 2),
+        ("lever arm α", _num(alpha / 1e4), _num(alpha_err / 1e4, 2), *parts(alpha_parts, 1e-4),
          "cm<sup>−2</sup> V<sup>−1</sup>"),
-        ("lever arm α", _num(alpha), _num(alpha_err, 2), _num(boot, 2), "m<sup>−2</sup> V<sup>−1</sup>"),
+        ("lever arm α", _num(alpha), _num(alpha_err, 2), *parts(alpha_parts),
+         "m<sup>−2</sup> V<sup>−1</sup>"),
         ("capacitance per area C = eα", _num(cap * 1e5), _num(cap_err * 1e5, 2) if _finite(cap_err)
-         else "–", "–", "nF cm<sup>−2</sup>"),
+         else "–", *no_parts, "nF cm<sup>−2</sup>"),
         ("capacitance per area C = eα", _num(cap), _num(cap_err, 2) if _finite(cap_err) else "–",
-         "–", "F m<sup>−2</sup>"),
-        ("zero-density voltage V<sub>0</sub>", _num(v0, 5), _num(v0_err, 2), _num(v0_boot, 2), "V"),
+         *no_parts, "F m<sup>−2</sup>"),
+        ("zero-density voltage V<sub>0</sub>", _num(v0, 5), _num(v0_err, 2), *parts(v0_parts), "V"),
         ("density offset n(V<sub>g</sub> = 0)", _num(offset / 1e4), _num(offset_err / 1e4, 2)
-         if offset_err is not None else "–", "–", "cm<sup>−2</sup>"),
+         if offset_err is not None else "–", *no_parts, "cm<sup>−2</sup>"),
         ("density offset n(V<sub>g</sub> = 0)", _num(offset), _num(offset_err, 2)
-         if offset_err is not None else "–", "–", "m<sup>−2</sup>"),
+         if offset_err is not None else "–", *no_parts, "m<sup>−2</sup>"),
         ("degeneracy g", _esc(result.degeneracy if result.degeneracy is not None
-                              else "undetermined"), "", "", ""),
-        ("Berry phase", _esc(_berry_text(result.berry_phase)), "", "", ""),
-        ("material", _esc(result.material), "", "", ""),
+                              else "undetermined"), "", "", "", "", ""),
+        ("Berry phase", _esc(_berry_text(result.berry_phase)), "", "", "", "", ""),
+        ("material", _esc(result.material), "", "", "", "", ""),
     ]
 
 
@@ -444,8 +453,12 @@ def render_fan_report(fan_map, result, figures, warnings, notes=()):
             '<a href="#settings">settings</a> · <a href="#cautions">cautions</a> · '
             f'<a href="{RESULT_NAME}">{RESULT_NAME}</a></p>',
             '<h2 id="calibration">Calibration</h2>',
-            _table(["quantity", "value", "± standard error (fit)", "± bootstrap", "units"],
-                   _calibration_rows(result), numeric=(1, 2, 3)),
+            _table(["quantity", "value", "± standard error", "of which: fit", "bootstrap",
+                    "systematic", "units"],
+                   _calibration_rows(result), numeric=(1, 2, 3, 4, 5)),
+            "<p>The standard error combines the larger of the fit covariance and the bootstrap "
+            "over ridge traces with a systematic part measured on the map (disagreement of "
+            "independent halves of the data).</p>",
             f"<p><b>Where the scale came from:</b> {_esc(result.scale_from or 'not stated')}</p>"]
     if len(result.scale_candidates) > 1:
         body.append("<p>The data allow more than one absolute scale; the candidates were:</p>")
