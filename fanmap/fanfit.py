@@ -91,13 +91,16 @@ def _wls(X, y, w, robust=True, iterations=4):
     Returns (beta, covariance scaled by the residual variance, final weights, residuals).
     """
     weights = w.copy()
+    # The robust scale comes from the points that take part: with points of zero prior
+    # weight (lines set aside) in the median it drops to zero and rejects every point.
+    active = w > 0
     for _ in range(iterations if robust else 1):
         sw = np.sqrt(weights)
         beta, *_ = np.linalg.lstsq(X * sw[:, None], y * sw, rcond=None)
         resid = y - X @ beta
-        if not robust:
+        if not robust or not active.any():
             break
-        scale = 1.4826 * np.median(np.abs(resid * np.sqrt(w))) + 1e-300
+        scale = 1.4826 * np.median(np.abs(resid * np.sqrt(w))[active]) + 1e-300
         u = np.clip(resid * np.sqrt(w) / (4.685 * scale), -2.0, 2.0)
         weights = w * np.where(np.abs(u) < 1, (1 - u**2) ** 2, 0.0)
     sw = np.sqrt(weights)
