@@ -359,3 +359,21 @@ def test_robust_fit_ignores_points_of_zero_weight_in_its_scale():
     beta, _, weights, _ = _wls(np.column_stack([np.ones_like(x), x]), y, w)
     assert beta == pytest.approx([2.0, 3.0], abs=0.05)
     assert (weights > 0).sum() >= 35
+
+
+@pytest.mark.xfail(strict=True, reason="known open: on a bilayer map starting at 2 T the "
+                   "+-4, +-8 lines start after the 25 % onset margin, the main sequence is "
+                   "named from +-12, +-16, -20 alone with a wrong spacing: the scale comes "
+                   "out ambiguous (auto) or alpha 11 % low (bilayer preset)")
+def test_clean_small_bilayer_map_fits_within_targets():
+    from fanmap.simulate import simulate_fan
+
+    ds = simulate_fan("graphene-bilayer", gate=np.linspace(-40, 40, 201),
+                      field=np.linspace(2, 12, 60),
+                      density_per_volt=float(lever_arm_from_dielectric(285e-9, 3.9)),
+                      zero_density_voltage=1.2)
+    truth = ds.attrs
+    r = fit_fan(ds, material="auto", bootstrap=0)
+    assert (r.degeneracy, r.berry_phase) == (truth["truth_degeneracy"], truth["truth_berry_phase"])
+    assert r.density_per_volt == pytest.approx(truth["truth_density_per_volt"], rel=0.003)
+    assert abs(r.zero_density_voltage - truth["truth_zero_density_voltage"]) < 0.003 * 80
