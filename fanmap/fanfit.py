@@ -527,11 +527,23 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     # split-off (broken-symmetry, fractional) state, not part of it.
     # Lines seen in the lowest-field rows, where the third line of the fan appears (25 %
     # margin), and not outdone by a neighbour there.
-    early = onsets <= 1.25 * np.sort(onsets)[min(2, n_lines - 1)]
-    main_weight = early & ~_subordinate_lines(minima, line, slopes, onsets, origin_rows, gate)
-    main_weight = (main_weight if main_weight.sum() >= 2 else early).astype(float)
-    naming = name_lines(slopes, free["slopes_stderr"], onsets, weights=main_weight,
-                        hall_fillings=hall, material=material, lever_arm_prior=prior)
+    third = np.sort(onsets)[min(2, n_lines - 1)]
+    subordinate = _subordinate_lines(minima, line, slopes, onsets, origin_rows, gate)
+    naming = None
+    # The lowest levels may start later (puddles near neutrality delay a bilayer's +-4,
+    # +-8 past the margin), and two or three main lines leave the spacing open: where
+    # R_xy is measured and does not confirm the first choice, the lines starting below
+    # twice that field are tried, and kept if the Hall plateaus confirm them.
+    for margin in (1.25, 2.0) if hall is not None else (1.25,):
+        early = onsets <= margin * third
+        main_weight = early & ~subordinate
+        main_weight = (main_weight if main_weight.sum() >= 2 else early).astype(float)
+        trial = name_lines(slopes, free["slopes_stderr"], onsets, weights=main_weight,
+                           hall_fillings=hall, material=material, lever_arm_prior=prior)
+        if naming is None or trial.scale_from == "hall":
+            naming = trial
+        if naming.scale_from == "hall":
+            break
     warnings += naming.warnings
 
     final = _fixed_fit(minima, line, naming.fillings, n_rows, dir_rows, use_hysteresis,
