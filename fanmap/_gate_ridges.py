@@ -403,6 +403,15 @@ def symmetry_centre(x, y, min_overlap=0.3):
     return centre, float(stderr), dip, bool(at_edge)
 
 
+def _finite_sorted(x, y):
+    """The finite (x, y) pairs as float arrays, in ascending x."""
+    x = np.asarray(x, float)
+    y = np.asarray(y, float)
+    keep = np.isfinite(x) & np.isfinite(y)
+    order = np.argsort(x[keep])
+    return x[keep][order], y[keep][order]
+
+
 def minimum_location(x, y, min_rise=0.2):
     """Position of a clear minimum of y(x) (a log resistance), with its standard error.
 
@@ -413,11 +422,7 @@ def minimum_location(x, y, min_rise=0.2):
     """
     from scipy.ndimage import median_filter
 
-    x = np.asarray(x, float)
-    y = np.asarray(y, float)
-    keep = np.isfinite(x) & np.isfinite(y)
-    order = np.argsort(x[keep])
-    x, y = x[keep][order], y[keep][order]
+    x, y = _finite_sorted(x, y)
     if x.size < 12:
         return None
     smooth = median_filter(y, size=9, mode="nearest")
@@ -464,11 +469,7 @@ def dip_centre(x, y, levels=(0.3, 0.5, 0.7), min_rise=0.5):
     """
     from scipy.ndimage import median_filter
 
-    x = np.asarray(x, float)
-    y = np.asarray(y, float)
-    keep = np.isfinite(x) & np.isfinite(y)
-    order = np.argsort(x[keep])
-    x, y = x[keep][order], y[keep][order]
+    x, y = _finite_sorted(x, y)
     if x.size < 12:
         return None
     smooth = median_filter(y, size=5, mode="nearest")
