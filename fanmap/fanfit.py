@@ -298,6 +298,16 @@ def _free_fit(m, line, slopes_n, origin_cols, names):
             "weights": weights, "resid": resid, "sel": sel, "names": ["origin"] + names}
 
 
+def _reassign(minima, origin_rows, slopes, field, step, residual_scale, cols, names, n_rows,
+              dir_rows):
+    """Assign the minima to ``slopes`` and refit them: ``(line, free fit, slopes, origin_rows)``."""
+    tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
+    line = _assign(minima, origin_rows, slopes, tolerance, resolved)
+    free = _free_fit(minima, line, slopes.size, cols, names)
+    return (line, free, free["slopes"],
+            _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows))
+
+
 def _origin_of_rows(origin, names, n_rows, direction):
     rows = np.arange(n_rows)
     value = np.full(n_rows, origin[0])
@@ -472,22 +482,16 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
     if faint is not None:
         minima = _concatenate(minima, faint[0])
         slopes = np.r_[slopes, faint[1]]
-        tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
-        line = _assign(minima, origin_rows, slopes, tolerance, resolved)
         cols, names = _nuisance_columns(minima.row, n_rows, dir_rows, use_drift, use_hysteresis)
-        free = _free_fit(minima, line, slopes.size, cols, names)
-        slopes = free["slopes"]
-        origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
+        line, free, slopes, origin_rows = _reassign(
+            minima, origin_rows, slopes, field, step, residual_scale, cols, names, n_rows, dir_rows)
     moving = np.abs(slopes) * b_abs.max() > _MIN_SWEEP_POINTS * step
     if not moving.all():
         if moving.sum() < 2:
             raise NoFanError("the minima form no fan: the lines found hardly move with field")
         slopes = slopes[moving]
-        tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
-        line = _assign(minima, origin_rows, slopes, tolerance, resolved)
-        free = _free_fit(minima, line, slopes.size, cols, names)
-        slopes = free["slopes"]
-        origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
+        line, free, slopes, origin_rows = _reassign(
+            minima, origin_rows, slopes, field, step, residual_scale, cols, names, n_rows, dir_rows)
 
     # Lines that miss the common origin (moire satellites, artefacts) leave the main fit.
     own_offset = np.zeros(slopes.size)
@@ -505,11 +509,8 @@ def fit_fan(fan_map, *, material="auto", dielectric=None, bootstrap=200, seed=0,
         if through_origin.sum() < 2:
             raise NoFanError("the lines found do not share a common origin; no Landau fan")
         slopes = slopes[through_origin]
-        tolerance, resolved = _tolerances(slopes, field, step, residual_scale)
-        line = _assign(minima, origin_rows, slopes, tolerance, resolved)
-        free = _free_fit(minima, line, slopes.size, cols, names)
-        slopes = free["slopes"]
-        origin_rows = _origin_of_rows(free["origin"], free["names"], n_rows, dir_rows)
+        line, free, slopes, origin_rows = _reassign(
+            minima, origin_rows, slopes, field, step, residual_scale, cols, names, n_rows, dir_rows)
 
     # Per-line summaries for naming.
     n_lines = slopes.size
