@@ -73,3 +73,14 @@ def open_from_args(args, path=None):
     if path is None:
         raise InputError("no map file given")
     return open_map(path, **reading_kwargs(args))
+
+
+def dielectric_prior(args):
+    """``(thickness in m, relative permittivity)`` from --dielectric-thickness/--permittivity, or None."""
+    if (args.dielectric_thickness is None) != (args.permittivity is None):
+        raise InputError("give both --dielectric-thickness and --permittivity, or neither")
+    if args.dielectric_thickness is None:
+        return None
+    if not (args.dielectric_thickness > 0 and args.permittivity > 0):
+        raise InputError("--dielectric-thickness (nm) and --permittivity must be positive")
+    return args.dielectric_thickness * 1e-9, args.permittivity

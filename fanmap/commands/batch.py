@@ -7,7 +7,7 @@ from .._cautions import CAUTIONS
 from ..archive import find_maps, jobs_for_paths, map_settings, run_batch
 from ..errors import InputError
 from ..materials import MATERIAL_NAMES
-from ._options import add_reading_options, reading_kwargs
+from ._options import add_reading_options, dielectric_prior, reading_kwargs
 
 HELP = "analyse every map of an archive folder, glob or workflow file into one results table"
 
@@ -64,13 +64,8 @@ def register(subparsers):
 
 
 def _settings_from_args(args):
-    dielectric = None
-    if (args.dielectric_thickness is None) != (args.permittivity is None):
-        raise InputError("give --dielectric-thickness and --permittivity together")
-    if args.dielectric_thickness is not None:
-        if args.dielectric_thickness <= 0 or args.permittivity <= 0:
-            raise InputError("--dielectric-thickness (nm) and --permittivity must be positive")
-        dielectric = {"thickness": args.dielectric_thickness * 1e-9, "permittivity": args.permittivity}
+    prior = dielectric_prior(args)
+    dielectric = None if prior is None else {"thickness": prior[0], "permittivity": prior[1]}
     for name in ("gate_range", "field_range", "gate_limits"):
         limits = getattr(args, name)
         if limits is not None and not limits[0] < limits[1]:

@@ -4,11 +4,10 @@ from pathlib import Path
 
 from .._atomic import write_text_atomic
 from .._cautions import CAUTIONS
-from ..errors import InputError
 from ..fanfit import fit_fan
 from ..materials import MATERIAL_NAMES
 from ..results import dumps
-from ._options import add_reading_options, open_from_args
+from ._options import add_reading_options, dielectric_prior, open_from_args
 from ._format import value_with_error
 
 _CM2 = 1e-4  # m^2 per cm^2
@@ -37,16 +36,6 @@ def register(subparsers):
     add_reading_options(parser)
     parser.set_defaults(run=run)
     return parser
-
-
-def _dielectric(args):
-    if (args.dielectric_thickness is None) != (args.permittivity is None):
-        raise InputError("give both --dielectric-thickness and --permittivity, or neither")
-    if args.dielectric_thickness is None:
-        return None
-    if not (args.dielectric_thickness > 0 and args.permittivity > 0):
-        raise InputError("--dielectric-thickness (nm) and --permittivity must be positive")
-    return args.dielectric_thickness * 1e-9, args.permittivity
 
 
 def _superlattice_lines(result):
@@ -107,7 +96,7 @@ def summary(result):
 
 
 def run(args):
-    dielectric = _dielectric(args)
+    dielectric = dielectric_prior(args)
     fan_map = open_from_args(args)
     result = fit_fan(fan_map, material=args.material, dielectric=dielectric,
                      bootstrap=args.bootstrap)
