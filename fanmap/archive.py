@@ -629,8 +629,11 @@ def _dask_client(workers, scheduler):
     # mmap threshold: every large numpy array is then mapped and unmapped afresh.  Ten
     # 500 x 250 fan fits took 4.0 s with it and 2.0 s without (one process, measured).
     # Each worker holds one map at a time, so memory stays bounded without it.
+    # The worker's statistical profiler samples the running task's stack every 10 ms,
+    # holding the interpreter lock; it made each fan fit 15-40 % slower (measured).
     with warnings.catch_warnings(), dask.config.set(
-            {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
+            {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
+             "distributed.worker.profile.enabled": False}):
         # "port 8787 is in use, using another": the address actually used is printed anyway.
         warnings.filterwarnings("ignore", message="Port .* is already in use")
         cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
@@ -768,7 +771,7 @@ def _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_f
     if summary:
         written.update(write_summary_figure(rows, out_dir / "summary.png", title=title))
         try:
-            written["index"] = _write_index(rows, out_dir)
+            written["index"] = _write_index(rows, out_dir, written["summary_png"])
         except Exception as exc:  # the table and summary are written; say what is missing
             progress.say(f"warning: the HTML index was not written ({_describe_error(exc)}); "
                          f"the results table and summary figure are complete")
@@ -846,13 +849,14 @@ _INDEX_COLUMNS = ("device", "cooldown", "map", "status", "acquired", "material",
                   "top_capacitance", "bottom_capacitance", "error")
 
 
-def _write_index(rows, out_dir):
-    """The HTML index of the batch, linking each map's report page."""
+def _write_index(rows, out_dir, summary):
+    """The HTML index of the batch, showing the summary figure and linking each map's report page."""
     from .report import REPORT_NAME, write_batch_report
 
     pages = {row["map"]: out_dir / "maps" / row["map"] / REPORT_NAME for row in rows
              if row["status"] == "ok" and (out_dir / "maps" / row["map"] / REPORT_NAME).is_file()}
-    return write_batch_report(out_dir, [{k: row[k] for k in _INDEX_COLUMNS} for row in rows], pages)
+    return write_batch_report(out_dir, [{k: row[k] for k in _INDEX_COLUMNS} for row in rows], pages,
+                              summary=summary)
 
 
 # --- the table ----------------------------------------------------------------------

@@ -59,6 +59,14 @@ class _Figure:
         self.stem, self.title, self.caption = stem, title, caption
         self.data = _render(fig)
 
+    @classmethod
+    def on_disk(cls, png_path, title, caption):
+        """A figure already written (PNG, with its PDF beside it): shown, not drawn again."""
+        figure = cls.__new__(cls)
+        figure.stem, figure.title, figure.caption = png_path.stem, title, caption
+        figure.data = {"png": png_path.read_bytes()}
+        return figure
+
 
 def _gate_step(fan_map):
     gate = np.asarray(fan_map[S.GATE].values, dtype=float)
@@ -677,7 +685,7 @@ _INDEX_OTHER = ("material", "degeneracy", "berry_phase", "states", "scale_from",
                 "twist_angle_deg", "top_capacitance", "bottom_capacitance", "warnings")
 
 
-def write_batch_report(out_dir, table, pages, *, title=None):
+def write_batch_report(out_dir, table, pages, *, title=None, summary=None):
     """Write ``index.html`` for a batch: the summary figure, the table and links to each map's page.
 
     Each linked map page gets a link back to the index (filled into the
@@ -699,6 +707,10 @@ def write_batch_report(out_dir, table, pages, *, title=None):
         row's ``name``/``map``/``source``.
     title : str, optional
         Heading of the page (e.g. the workflow's name); default "Batch".
+    summary : str or Path, optional
+        A summary figure already written into ``out_dir`` (PNG, with a PDF of the
+        same name beside it), shown instead of drawing the per-map overview
+        ``batch_summary.png``/``.pdf``.
 
     Returns
     -------
@@ -709,10 +721,20 @@ def write_batch_report(out_dir, table, pages, *, title=None):
     if not rows:
         raise InputError("the batch table is empty; nothing to write an index for")
     out_dir = Path(out_dir)
-    figure = _Figure("batch_summary", "Batch summary",
-                     "Lever arm and zero-density voltage per device and cooldown (± one standard "
-                     "error); rows without a fit failed, see the table.",
-                     F.plot_batch_summary(rows))
+    if summary is not None:
+        summary = Path(summary)
+        if summary.parent.resolve() != out_dir.resolve() or not summary.is_file():
+            raise InputError(f"the summary figure {summary} is not a file in {out_dir}; write it "
+                             "there first or leave summary out to draw the overview")
+        figure = _Figure.on_disk(summary, "Batch summary",
+                                 "Lever arm and zero-density voltage per device against acquisition "
+                                 "time, one series per cooldown (± one standard error); maps without "
+                                 "a fit are listed in the table.")
+    else:
+        figure = _Figure("batch_summary", "Batch summary",
+                         "Lever arm and zero-density voltage per device and cooldown (± one standard "
+                         "error); rows without a fit failed, see the table.",
+                         F.plot_batch_summary(rows))
     index_path = out_dir / INDEX_NAME
     shown = [k for k in _INDEX_FIRST if any(k in r for r in rows)]
     other = [k for k in _INDEX_OTHER if any(k in r for r in rows)]
@@ -759,7 +781,7 @@ def write_batch_report(out_dir, table, pages, *, title=None):
                 "← batch index</a><!--/batch-index-->")
         if _INDEX_LINK.search(text):
             updated.append((page, _INDEX_LINK.sub(lambda _m: link, text, count=1)))
-    _write_all(out_dir, [figure], [])
+    _write_all(out_dir, [] if summary is not None else [figure], [])
     for page, text in updated:
         write_text_atomic(page, text)
     write_text_atomic(index_path, index_html)

@@ -138,6 +138,9 @@ def test_local_cluster_analyses_every_good_map_and_reports_every_bad_one(tmp_pat
     assert comparable(dict(serial, map=by_path[str(good[2])]["map"])) == comparable(by_path[str(good[2])])
     assert len(records(out)) == len(maps)
     assert (out / "summary.png").stat().st_size > 0 and (out / "index.html").is_file()
+    # The index shows that summary figure; it does not draw a second one.
+    assert 'href="summary.pdf"' in (out / "index.html").read_text(encoding="utf-8")
+    assert not (out / "batch_summary.png").exists()
     assert not leftovers(out)                                       # no temporary files left
 
 

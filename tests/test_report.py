@@ -205,6 +205,24 @@ def test_batch_index_and_map_pages_link_both_ways(tmp_path, fan_outputs):
     assert page.read_text(encoding="utf-8").count("← batch index") == 1
 
 
+def test_batch_index_shows_a_summary_figure_already_written(tmp_path):
+    rows = [{"device": "A", "cooldown": "cd1", "map": "A-cd1", "status": "ok",
+             "density_per_volt": ALPHA, "density_per_volt_stderr": 3e12,
+             "zero_density_voltage": V0, "zero_density_voltage_stderr": 0.02}]
+    png = b"\x89PNG\r\n\x1a\n stand-in bytes"
+    (tmp_path / "summary.png").write_bytes(png)
+    index = R.write_batch_report(tmp_path, rows, None, summary=tmp_path / "summary.png")
+    page = index.read_text(encoding="utf-8")
+    assert base64.b64encode(png).decode("ascii") in page
+    assert "summary.pdf" in re.findall(r'href="([^"]+)"', page)
+    assert not (tmp_path / "batch_summary.png").exists()          # nothing drawn twice
+    elsewhere = tmp_path / "sub"
+    elsewhere.mkdir()
+    (elsewhere / "summary.png").write_bytes(png)
+    with pytest.raises(InputError, match="not a file in"):
+        R.write_batch_report(tmp_path, rows, None, summary=elsewhere / "summary.png")
+
+
 def test_batch_table_as_columns(tmp_path):
     columns = {"device": ["A", "A"], "cooldown": ["1", "2"],
                "density_per_volt": [7e14, 7.1e14], "density_per_volt_stderr": [1e12, 1e12],
