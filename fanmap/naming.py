@@ -153,6 +153,13 @@ def _refine_unit(s, err, u, gamma, shift, ambipolar):
     return float(u), gamma, float(shift)
 
 
+def _lowest_level_only(slopes, err, unit, shift, main):
+    """Whether every main line sits at |s - a| = u/2, the lowest level of its sign."""
+    relative = np.abs((np.asarray(slopes, float)[main] - shift) / unit)
+    tol = np.maximum(0.1, 3 * np.asarray(err, float)[main] / unit)
+    return bool(relative.size) and bool(np.all(np.abs(relative - 0.5) <= tol))
+
+
 def nearest_fraction(value, max_denominator=9):
     """Nearest fraction p/q to ``value`` with q <= ``max_denominator``.
 
@@ -383,10 +390,15 @@ def name_lines(slopes, slope_stderr, onsets, *, weights=None, hall_fillings=None
     # A line whose error the fit could not give (singular covariance) counts as 2 % uncertain.
     err = np.where(np.isfinite(err), err, 0.02 * np.abs(np.asarray(slopes, float)))
     unit, gamma, shift, main = main_sequence_unit(slopes, err, onsets, weights)
+    preset = get_material(material)
+    if preset.offset == 0.0 and gamma == 0.5 and _lowest_level_only(slopes, err, unit, shift,
+                                                                     main):
+        # Only the lowest level of each sign is in the main sequence: +-u/2 with gamma = 1/2
+        # is just as well +-u' with u' = u/2 and gamma = 0; the preset's offset decides.
+        unit, gamma = 0.5 * unit, 0.0
     s = np.asarray(slopes, float) - shift
     relative = s / unit
     on_main_grid = _on_grid(np.abs(relative), gamma, np.maximum(0.1, 3 * err / unit))
-    preset = get_material(material)
     # Only lines of the main sequence read the Hall scale: lines off it may be crossings of
     # other families (moire satellites) whose R_xy counts from elsewhere.
     if hall_fillings is not None:

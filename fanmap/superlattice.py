@@ -216,33 +216,41 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
         lattice_constant = None
 
     points = _ridge_points(fan_result)
+    if not (fan_result.extras.get("settings") or {}).get("use_conductivity"):
+        points["gate"] = _reread_clipped_minima(points, gate, rxx)
     gate_step = float(np.median(np.abs(np.diff(np.sort(np.unique(gate))))))
     scale = _Scale(alpha=alpha, v0=v0, gate_step=gate_step)
     main_states = [(i, st) for i, st in enumerate(fan_result.states)
                    if st.kind != "satellite"]
 
-    free = _unassigned_points(points, main_states, scale)
     onsets = [st.field_min for _, st in main_states if np.isfinite(st.field_min)]
-    lines = _find_offset_lines(points, free, scale, gate, fields, max_slope,
-                               min(onsets) if onsets else 0.0)
     main_fillings = [_filling_number(st.filling) for _, st in main_states if st.kind == "integer"]
     main_fillings = [abs(int(round(f))) for f in main_fillings if f and float(f).is_integer()]
-    lattice = _fit_lattice(lines, scale, flavours, max_band_filling, notes,
-                           main_origin_hint=_main_origin_hint(main_states, flavours),
-                           main_degeneracy=int(np.gcd.reduce(main_fillings))
-                           if len(main_fillings) >= 3 else None)
-
-    if lattice is not None:
-        _drop_off_step_lines(lattice, lines, flavours, notes)
-        if len(lattice["assigned"]) < 2:
-            notes.append("fewer than two satellite lines keep their family's Landau-level step: "
-                         "not reported as a superlattice")
-            lattice = None
     rng = np.random.default_rng(seed)
+    found = None
+    for _ in range(2):
+        trial_notes = list(notes)
+        lines, lattice = _search_lattice(points, main_states, scale, gate, fields, max_slope,
+                                         min(onsets) if onsets else 0.0, flavours,
+                                         max_band_filling, main_fillings, trial_notes)
+        if lattice is None:
+            break
+        joint = _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng)
+        found = (lines, lattice, joint, trial_notes)
+        # Slopes are read as integers t in units of the main fit's lever arm: when the joint
+        # fit moves it enough to misread the steepest lines, search again on the joint scale.
+        change = joint["density_per_volt"] / scale.alpha - 1
+        if lattice["main_band_filling"] or not joint["joint"] or abs(change) * max_slope < 0.25:
+            break
+        scale = _Scale(alpha=joint["density_per_volt"], v0=joint["zero_density_voltage"],
+                       gate_step=gate_step)
+    if found is not None:
+        lines, lattice, joint, notes = found
+    else:
+        notes = trial_notes
     superlattice = None
     satellites, main_fan_lines, relabelled = [], [], []
     if lattice is not None:
-        joint = _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng)
         superlattice = _superlattice_dict(joint, flavours, lattice_constant, lattice, fan_result,
                                           notes)
         if material == "auto" and lattice_constant is not None:
@@ -302,6 +310,24 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
                                main_states_as_satellites=relabelled)
 
 
+def _search_lattice(points, main_states, scale, gate, fields, max_slope, main_onset, flavours,
+                    max_band_filling, main_fillings, notes):
+    """Offset lines and the lattice of their intercepts on one scale: (lines, lattice or None)."""
+    free = _unassigned_points(points, main_states, scale)
+    lines = _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset)
+    lattice = _fit_lattice(lines, scale, flavours, max_band_filling, notes,
+                           main_origin_hint=_main_origin_hint(main_states, flavours),
+                           main_degeneracy=int(np.gcd.reduce(main_fillings))
+                           if len(main_fillings) >= 3 else None)
+    if lattice is not None:
+        _drop_off_step_lines(lattice, lines, flavours, notes)
+        if len(lattice["assigned"]) < 2:
+            notes.append("fewer than two satellite lines keep their family's Landau-level step: "
+                         "not reported as a superlattice")
+            lattice = None
+    return lines, lattice
+
+
 # --- input -------------------------------------------------------------------------
 
 @dataclass(frozen=True)
@@ -356,6 +382,58 @@ def _ridge_points(fan_result):
     if weight.size:
         weight = weight / np.median(weight)
     return {"field": b, "gate": v, "state": state, "weight": weight, "row": row}
+
+
+def _reread_clipped_minima(points, gate, rxx):
+    """Ridge positions re-read on the raw R_xx where the fit's log signal clipped the dip.
+
+    The fan fit clips log R_xx at a floor of a few times the noise and places a
+    flat-bottomed dip at the midpoint of its walls.  Satellite and neutrality lines of a
+    moire map run beside band-insulator peaks, whose steep walls pull that midpoint by
+    several gate steps.  Where the raw dip under the clipped run has one clear bottom
+    (values falling towards it from both ends), the vertex of the parabola through its
+    lowest three raw points replaces the midpoint; noise on a true zero plateau has no
+    such shape and keeps the fit's position.
+    """
+    from .ridges import log_signal
+
+    order = np.argsort(gate)
+    g, r = gate[order], rxx[:, order]
+    clipped_log, _ = log_signal(r)
+    raw = _log_resistance(r)
+    clipped = np.isfinite(raw) & (clipped_log > raw + 1e-9)
+    out = points["gate"].copy()
+    rows = points["row"]
+    ok = (rows >= 0) & (rows < r.shape[0])
+    col = np.clip(np.rint(np.interp(out, g, np.arange(g.size))).astype(int), 0, g.size - 1)
+    for k in np.flatnonzero(ok):
+        i, c = rows[k], col[k]
+        lo, hi = c, c
+        while lo > 0 and clipped[i, lo - 1]:
+            lo -= 1
+        while hi < g.size - 1 and clipped[i, hi + 1]:
+            hi += 1
+        if not clipped[i, c] and not (clipped[i, max(c - 1, 0)] or clipped[i, min(c + 1, g.size - 1)]):
+            continue
+        if not clipped[i, c]:
+            lo, hi = (c - 1, c - 1) if c > 0 and clipped[i, c - 1] else (c + 1, c + 1)
+            while lo > 0 and clipped[i, lo - 1]:
+                lo -= 1
+            while hi < g.size - 1 and clipped[i, hi + 1]:
+                hi += 1
+        seg = raw[i, lo:hi + 1]
+        if not np.isfinite(seg).all():
+            continue
+        j = int(np.argmin(seg))
+        # one clear bottom: falling towards it from both ends of the run
+        if np.any(np.diff(seg[:j + 1]) > 0) or np.any(np.diff(seg[j:]) < 0):
+            continue
+        j += lo
+        if j <= 0 or j >= g.size - 1 or not np.isfinite(raw[i, j - 1:j + 2]).all():
+            continue
+        offset = np.clip(_parabolic_offset(raw[i], j), -0.5, 0.5)
+        out[k] = float(np.interp(j + offset, np.arange(g.size), g))
+    return out
 
 
 def _unassigned_points(points, main_states, scale):
@@ -781,9 +859,10 @@ def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
     b, v, w = points["field"], points["gate"], points["weight"]
     groups = []   # (kind, design rows, targets, weights), one per line
     main_s = float(lattice["main_band_filling"])
+    inside = _inside_neutrality_fan(v, lattice, scale)
     for i, st in main_states:
         nu = _filling_number(st.filling)
-        sel = points["state"] == i
+        sel = (points["state"] == i) & inside
         if st.kind not in _MAIN_KINDS or not nu or sel.sum() < 3:
             continue
         X = np.column_stack([np.ones(sel.sum()), nu * b[sel] / _PHI0, np.full(sel.sum(), main_s)])
@@ -911,6 +990,30 @@ def _joint_fit(points, lines, lattice, main_states, scale, bootstrap, rng):
                                                    result["cell_density_systematic_stderr"]))
     result["stderr_from"] += " and line scatter"
     return result
+
+
+def _inside_neutrality_fan(gate, lattice, scale):
+    """Mask of gate voltages between the innermost satellite families on either side.
+
+    The Landau levels of the neutrality fan live in the band between neutrality and the
+    first gap at a band filling; beyond it the minima belong to the satellite families, so
+    main-fan points there are chance alignments with the main fit's lines (two gate steps
+    of margin).  Only when the main fit's origin is neutrality.
+    """
+    mask = np.ones(np.shape(gate), bool)
+    if lattice["main_band_filling"]:
+        return mask
+    n0 = lattice["cell_density_guess"]
+    fills = [float(s) for s in lattice["assigned"].values()]
+    density = scale.density(gate)
+    margin = 2 * abs(scale.alpha) * scale.gate_step
+    above = [s for s in fills if s > 0]
+    below = [s for s in fills if s < 0]
+    if above:
+        mask &= density < min(above) * n0 - margin
+    if below:
+        mask &= density > max(below) * n0 + margin
+    return mask
 
 
 def _biweight(groups, free, fixed, gate_step, rounds=6):

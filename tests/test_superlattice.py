@@ -358,3 +358,41 @@ def test_fit_fan_reports_the_twist_angle(correlated):
     satellites = {(int(s.filling), s.band_filling) for s in result.states
                   if s.kind == "satellite"}
     assert truth_satellites(fan_map, min_field_range=1.0) <= satellites
+
+
+def test_small_angle_fan_with_half_filling_families_keeps_its_main_fan():
+    # Regression: at 0.9 deg with s = +-2 families the neutrality fan shows only +-4 over
+    # most of the field range (+-8, +-12 end at the s = +-2 gap), and the fit read +-4 as
+    # the lowest level of a Berry-phase-pi sequence (+-2): alpha came out 48 % low.
+    # Fourfold levels nu = +-4N from neutrality in twisted bilayer graphene (Cao et al.,
+    # Nature 556, 43 (2018), from memory).  Lines beside the band-insulator peaks are
+    # re-read on the raw R_xx, and the satellite search is repeated on the joint scale.
+    fan_map = simulate_fan("moire-graphene", twist_angle_deg=0.9, correlated_states=True,
+                           hall=True, seed=3)
+    attrs = fan_map.attrs
+    result = fit_fan(fan_map, material="moire-graphene", bootstrap=50)
+    assert result.density_per_volt == pytest.approx(attrs["truth_density_per_volt"], rel=0.003)
+    sl = result.superlattice
+    assert abs(sl["twist_angle_deg"] - 0.9) < 0.01
+    assert sl["density"] == pytest.approx(float(attrs["truth_full_filling_density"]), rel=0.01)
+    labels = {s.filling for s in result.states if s.kind == "integer"}
+    assert {"4", "-4"} <= labels and not {"2", "-2"} & labels
+    found = {(int(s.filling), s.band_filling) for s in result.states if s.kind == "satellite"}
+    truth = {(t, s) for t, s in truth_satellites(fan_map, min_field_range=1.0) if abs(t) <= 24}
+    assert found <= set(truth_satellites(fan_map))          # no false satellite
+    assert len(found & truth) >= 0.9 * len(truth)
+
+
+@pytest.mark.parametrize("material,labels", [("moire-graphene", ["4", "-4"]),
+                                             ("graphene-bilayer", ["4", "-4"]),
+                                             ("graphene-monolayer", ["2", "-2"])])
+def test_lowest_levels_alone_are_named_by_the_preset_offset(material, labels):
+    # Two lines +-s alone fit nu = +-g/2 (gamma = 1/2) as well as nu = +-g (gamma = 0); the
+    # preset decides: monolayer +-4(N + 1/2) (Novoselov et al., Nature 438, 197 (2005)),
+    # bilayer and twisted bilayer +-4N (Novoselov et al., Nature Physics 2, 177 (2006)).
+    from fanmap.naming import name_lines
+
+    naming = name_lines(np.array([0.15, -0.15]), np.full(2, 1e-4), np.array([1.5, 1.5]),
+                        material=material)
+    assert naming.labels == labels
+    assert all(kind == "integer" for kind in naming.kinds)
