@@ -524,6 +524,10 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
         line = _grow_line(b, v, row, points["weight"], claimed, t, u0, k, tol)
         if line is None or line["points"] < min_points:
             continue
+        # the vote only seeds the line: among neighbouring integers (steep lines pile up
+        # for t +- 1 too) the free fit of its points decides
+        if round(line["slope_filling"]) != 0:
+            t = int(round(line["slope_filling"]))
         # A line seen only far from B = 0 is a long extrapolation (often a chain of
         # crossings), unless the gate window cuts it off at its low-field end.
         start = line["intercept"] + line["slope"] * line["field_min"]
@@ -538,7 +542,15 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
             continue
         # quantised slopes: a background valley drifts with a slope some 10 % off an integer
         slope_tol = max(0.05 + 0.03 * abs(t), 3 * line["slope_filling_stderr"])
-        if abs(line["slope_filling"] - t) > slope_tol or abs(line["intercept"] - scale.v0) < origin_tol:
+        off_slope = abs(line["slope_filling"] - t)
+        if off_slope > slope_tol and not (
+                off_slope < 0.5 and off_slope <= 2 * slope_tol
+                and _held_slope_rms(b, v, line, t * k) <= 0.6 * step):
+            # (a short line whose low-field end sits a step off, on a sloping background,
+            # misses the integer by more; the line of integer slope then still describes
+            # its points as well as a straight line must)
+            continue
+        if abs(line["intercept"] - scale.v0) < origin_tol:
             continue
         if line["rms"] > 0.6 * step:
             continue   # not straight: a background valley or a chain of crossings
@@ -551,6 +563,13 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
         claimed[line["members"]] = True
         lines.append(line)
     return lines
+
+
+def _held_slope_rms(b, v, line, slope):
+    """RMS gate residual (V) of a line's points about the best line of the given slope."""
+    m = line["members"]
+    resid = v[m] - slope * b[m]
+    return float(np.sqrt(np.mean((resid - np.mean(resid)) ** 2)))
 
 
 def _grow_line(b, v, row, weight, claimed, t, u0, k, tol):
