@@ -10,15 +10,18 @@ V0), then analyses it
 3. with 2 workers again over the first half of the archive, to show that peak
    memory does not grow with the number of maps.
 
-Each run is a separate process; its peak memory is the largest summed resident
-set of its whole process tree (the batch, the dask scheduler's process and every
-worker), sampled with psutil every 0.1 s, and its CPU time is the user + system
-time of every process of the tree.  Wall-clock rates depend on what else the
-machine runs; CPU time per map does not, so the overhead is given both ways, and
-the median analysis time of one map inside the workers (the table's ``elapsed``
-column) shows whether the analysis itself ran slower there.  The per-map analysis is the fan fit
-(cross-checks and per-map figures off, so that the machinery and not the figure
-writer is measured); the same settings go to every run.
+Each run is a separate process.  Its peak memory is the sum over its whole process
+tree (the batch with the dask scheduler, and every worker) of each process's own peak
+resident set (the kernel's high-water mark, read every 0.5 s), which is never less
+than the tree's largest simultaneous total; its CPU time is the kernel's user +
+system time of the run and of the children it waited for.  Wall-clock rates depend
+on what else the machine runs, so every run is repeated in rounds (``--rounds``,
+default 3), the runs taking turns, and each figure is from the run with the median
+wall time; CPU time per map hardly depends on other load, so the overhead is given
+both ways, and the median analysis time of one map inside the workers (the table's
+``elapsed`` column) shows whether the analysis itself ran slower there.  The per-map
+analysis is the fan fit (cross-checks and per-map figures off, so that the machinery
+and not the figure writer is measured); the same settings go to every run.
 
 Targets: batch overhead per map under 15 % of the serial analysis time; at least
 1.7 times the 1-worker rate with 2 workers on 2 cores; peak memory independent
@@ -26,13 +29,14 @@ of the archive size.
 
 Usage::
 
-    python benchmarks/throughput.py                 # 200 maps (about 15 minutes on 2 cores)
-    python benchmarks/throughput.py --maps 20       # a quick look
+    python benchmarks/throughput.py                 # 200 maps, 3 rounds (about 10 minutes on 2 cores)
+    python benchmarks/throughput.py --maps 20 --rounds 1   # a quick look
 """
 
 import argparse
 import json
 import os
+import resource
 import shutil
 import subprocess
 import sys
@@ -91,51 +95,78 @@ def _phase(kind, archive, out, count):
                                   stream=None)
         rows = batch.read_results_table(Path(out) / "results.csv")
         outputs = outcome.timings["outputs"]
-    print(json.dumps({"seconds": time.perf_counter() - start, "maps": len(maps), "outputs_s": outputs,
+    seconds = time.perf_counter() - start
+    # CPU time of this process and of every child it has waited for (the dask workers).
+    cpu = sum(u.ru_utime + u.ru_stime for u in (resource.getrusage(resource.RUSAGE_SELF),
+                                                 resource.getrusage(resource.RUSAGE_CHILDREN)))
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    print(json.dumps({"seconds": seconds, "maps": len(maps), "outputs_s": outputs, "cpu_s": cpu,
+                      "peak_rss": peak,
                       "failed": sum(row["status"] != "ok" for row in rows),
                       "analysis_s": float(sum(row["elapsed"] for row in rows)),
                       "median_map_s": float(np.median([row["elapsed"] for row in rows]))}))
 
 
-def _sample(process, cpu):
-    """Summed RSS of the tree now; updates ``cpu`` (pid -> user + system seconds so far)."""
-    total = 0
+def _peak_rss(pid):
+    """The process's peak resident set so far (VmHWM, bytes), or None once it has gone."""
+    try:
+        with open(f"/proc/{pid}/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        return None
+    return None
+
+
+def _sample(process, peaks):
+    """Update ``peaks`` (pid -> peak RSS) for every process of the tree."""
     for proc in [process] + process.children(recursive=True):
-        try:
-            with proc.oneshot():
-                total += proc.memory_info().rss
-                times = proc.cpu_times()
-                cpu[proc.pid] = times.user + times.system
-        except psutil.Error:
-            pass
-    return total
+        peak = _peak_rss(proc.pid)
+        if peak is not None:
+            peaks[proc.pid] = max(peaks.get(proc.pid, 0), peak)
 
 
 def measure(kind, archive, out, count):
-    """Run one phase in a fresh process; return its result with the tree's peak memory."""
+    """Run one phase in a fresh process; return its result with the tree's peak memory.
+
+    Peak memory is the sum of each process's own peak (the kernel's high-water mark,
+    read every 0.5 s): at least the tree's largest simultaneous total, never less.
+    Sampling is sparse so that the harness itself takes next to no CPU from the run;
+    CPU time comes from the kernel's accounting of the run and its children.
+    """
+    shutil.rmtree(out, ignore_errors=True)
     command = [sys.executable, __file__, "_phase", kind, str(archive), str(out), str(count)]
     proc = subprocess.Popen(command, stdout=subprocess.PIPE, text=True,
                             env=dict(os.environ, OMP_NUM_THREADS="1"))
-    watched, peak, cpu = psutil.Process(proc.pid), 0, {}
+    watched, peaks = psutil.Process(proc.pid), {}
     while proc.poll() is None:
         try:
-            peak = max(peak, _sample(watched, cpu))
+            _sample(watched, peaks)
         except psutil.Error:
             pass
-        time.sleep(0.1)
+        time.sleep(0.5)
     stdout, _ = proc.communicate()
     if proc.returncode != 0:
         raise SystemExit(f"{kind} run failed (exit {proc.returncode})")
     result = json.loads(stdout.strip().splitlines()[-1])
-    result.update(peak_mib=peak / 2**20, rate=result["maps"] / result["seconds"],
-                  cpu_per_map=sum(cpu.values()) / result["maps"])
+    peaks[proc.pid] = max(peaks.get(proc.pid, 0), result.pop("peak_rss"))
+    result.update(peak_mib=sum(peaks.values()) / 2**20, rate=result["maps"] / result["seconds"],
+                  cpu_per_map=result.pop("cpu_s") / result["maps"])
     return result
+
+
+def _median_run(results):
+    """The run whose wall time is the median of the rounds (other load only ever slows a run)."""
+    ordered = sorted(results, key=lambda r: r["seconds"])
+    return ordered[(len(ordered) - 1) // 2]
 
 
 def main(argv=None):
     parser = argparse.ArgumentParser(description="throughput and memory of fanmap batch")
     parser.add_argument("--maps", type=int, default=200, help="maps in the archive (default 200)")
     parser.add_argument("--workdir", type=Path, help="where the archive goes (default: a temporary folder)")
+    parser.add_argument("--rounds", type=int, default=3, help="rounds of every run (default 3)")
     parser.add_argument("--keep", action="store_true", help="keep the archive and outputs")
     args = parser.parse_args(argv)
     workdir = args.workdir or Path(tempfile.mkdtemp(prefix="fanmap-throughput-"))
@@ -151,14 +182,19 @@ def main(argv=None):
               f"{len(os.sched_getaffinity(0))}; load average before the runs: "
               f"{os.getloadavg()[0]:.1f}")
         half = max(1, args.maps // 2)
-        runs = {
-            "serial, one process": measure("serial", archive, workdir / "out-serial", args.maps),
-            "batch, 1 worker": measure("1", archive, workdir / "out-1", args.maps),
-            "batch, 2 workers": measure("2", archive, workdir / "out-2", args.maps),
-            f"batch, 2 workers, {half} maps": measure("2", archive, workdir / "out-half", half),
-        }
-        print(f"\n{'run':30s} {'maps':>5s} {'failed':>6s} {'wall s':>7s} {'maps/s':>7s} "
-              f"{'CPU s/map':>9s} {'median map s':>12s} {'peak MiB':>9s}")
+        phases = {"serial, one process": ("serial", args.maps), "batch, 1 worker": ("1", args.maps),
+                  "batch, 2 workers": ("2", args.maps), f"batch, 2 workers, {half} maps": ("2", half)}
+        # Rounds of every run in turn, so that a slow spell of the machine hits all of them
+        # alike; each figure below is the run with the median wall time of its rounds.
+        rounds = {name: [] for name in phases}
+        for round_number in range(args.rounds):
+            for name, (kind, count) in phases.items():
+                rounds[name].append(measure(kind, archive, workdir / "out", count))
+            print(f"round {round_number + 1}: " + ", ".join(
+                f"{name} {rounds[name][-1]['seconds']:.1f} s" for name in phases), flush=True)
+        runs = {name: _median_run(results) for name, results in rounds.items()}
+        print(f"\n{'run (median of ' + str(args.rounds) + ' rounds)':30s} {'maps':>5s} {'failed':>6s} "
+              f"{'wall s':>7s} {'maps/s':>7s} {'CPU s/map':>9s} {'median map s':>12s} {'peak MiB':>9s}")
         for name, r in runs.items():
             print(f"{name:30s} {r['maps']:5d} {r['failed']:6d} {r['seconds']:7.1f} {r['rate']:7.3f} "
                   f"{r['cpu_per_map']:9.3f} {r['median_map_s']:12.3f} {r['peak_mib']:9.0f}")

@@ -761,7 +761,7 @@ def _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_f
             threads = sum(client.nthreads().values()) or 1
             progress.say(f"dask: {len(client.nthreads())} workers, {threads} threads"
                          + (f"; dashboard {link}" if link else
-                            "; no dashboard (it needs the bokeh package)"))
+                            "; no dashboard (install it with: pip install 'fanmap[dashboard]')"))
             _run_distributed(client, work, finish, max_in_flight or 2 * threads)
     progress.show(final=True)
     analysed_at = time.perf_counter()
