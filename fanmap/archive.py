@@ -665,7 +665,9 @@ def run_batch(jobs, out_dir, *, workers=None, scheduler=None, resume=False, retr
         0 runs every map in this process, one after the other, without dask.
     scheduler : str, optional
         Address of a running dask scheduler (``tcp://host:8786``); its workers must
-        see the map files and ``out_dir`` under the same paths.
+        see the map files and ``out_dir`` under the same paths, and run fastest with
+        ``DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED=False`` in their environment
+        (local workers have dask's statistical profiler turned off).
     resume : bool
         Skip maps whose content hash and settings already have a record in ``out_dir``.
     retry_failed : bool
