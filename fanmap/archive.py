@@ -25,12 +25,14 @@ import dataclasses
 import datetime as _dt
 import glob
 import hashlib
+import importlib
 import itertools
 import json
 import math
 import os
 import re
 import sys
+import threading
 import time
 import traceback
 import warnings
@@ -613,17 +615,19 @@ def _dask_client(workers, scheduler):
 
     if scheduler:
         try:
-            client = Client(scheduler, timeout="20s")
+            client = Client(scheduler, timeout="20s", set_as_default=False)
         except (OSError, TimeoutError) as exc:
             raise InputError(f"cannot connect to the dask scheduler at {scheduler}: {exc}; "
                              f"check the address (tcp://HOST:PORT) and that the scheduler runs") from None
-        with client:
+        try:
             try:
                 client.wait_for_workers(1, timeout=60)
             except TimeoutError:
                 raise InputError(f"the dask scheduler at {scheduler} has had no worker for 60 s; "
                                  f"start workers (dask worker {scheduler}) and run again") from None
             yield client
+        finally:
+            client.close()
         return
     # dask sets MALLOC_TRIM_THRESHOLD_=65536 in its workers, which turns off glibc's adaptive
     # mmap threshold: every large numpy array is then mapped and unmapped afresh.  Ten
@@ -638,8 +642,16 @@ def _dask_client(workers, scheduler):
         warnings.filterwarnings("ignore", message="Port .* is already in use")
         cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                dashboard_address=":8787", silence_logs=logging.ERROR)
-    with cluster, Client(cluster) as client:
-        yield client
+    # Not the client's own context manager: that must be left in the thread that entered
+    # it, and the run closes the cluster in the background while it writes the table.
+    try:
+        client = Client(cluster, set_as_default=False)
+        try:
+            yield client
+        finally:
+            client.close()
+    finally:
+        cluster.close()
 
 
 def _dashboard(client, local):
@@ -754,34 +766,65 @@ def _run_batch(jobs, out_dir, workers, scheduler, resume, retry_failed, max_in_f
     work = todo()
     first = next(work, None)          # start no cluster when every map is already done
     work = itertools.chain([first], work) if first is not None else iter(())
-    if workers == 0 and not scheduler:
-        for index, job, settings in work:
-            finish(index, analyse_one(job.path, settings))
-    elif first is not None:
-        with _dask_client(workers or default_workers(), scheduler) as client:
+    with contextlib.ExitStack() as cluster:
+        warmed = None
+        if workers == 0 and not scheduler:
+            for index, job, settings in work:
+                finish(index, analyse_one(job.path, settings))
+        elif first is not None:
+            client = cluster.enter_context(_dask_client(workers or default_workers(), scheduler))
+            if summary:   # this process is idle while the workers run
+                warmed = _in_background(lambda: importlib.import_module(".report", __package__))
             link = _dashboard(client, local=not scheduler)
             threads = sum(client.nthreads().values()) or 1
             progress.say(f"dask: {len(client.nthreads())} workers, {threads} threads"
                          + (f"; dashboard {link}" if link else
                             "; no dashboard (install it with: pip install 'fanmap[dashboard]')"))
             _run_distributed(client, work, finish, max_in_flight or 2 * threads)
-    progress.show(final=True)
-    analysed_at = time.perf_counter()
-
-    rows = _assemble(jobs, keys, out_dir)
-    written = write_results_table(rows, out_dir)
-    if summary:
-        written.update(write_summary_figure(rows, out_dir / "summary.png", title=title))
+        progress.show(final=True)
+        analysed_at = time.perf_counter()
+        # Every row is recorded: the cluster shuts down (most of a second) while the
+        # table and summary are written.
+        closed = _in_background(cluster.pop_all().close)
         try:
-            written["index"] = _write_index(rows, out_dir, written["summary_png"])
-        except Exception as exc:  # the table and summary are written; say what is missing
-            progress.say(f"warning: the HTML index was not written ({_describe_error(exc)}); "
-                         f"the results table and summary figure are complete")
+            if warmed is not None:
+                warmed()
+            rows = _assemble(jobs, keys, out_dir)
+            written = write_results_table(rows, out_dir)
+            if summary:
+                written.update(write_summary_figure(rows, out_dir / "summary.png", title=title))
+                try:
+                    written["index"] = _write_index(rows, out_dir, written["summary_png"])
+                except Exception as exc:  # the table and summary are written; say what is missing
+                    progress.say(f"warning: the HTML index was not written ({_describe_error(exc)}); "
+                                 f"the results table and summary figure are complete")
+        finally:
+            closed()
     finished = time.perf_counter()
     return BatchOutcome(out_dir=out_dir, maps=len(jobs), analysed=progress.done, resumed=progress.resumed,
                         failed=sum(r["status"] != "ok" for r in rows), outputs=written,
                         elapsed=finished - started,
                         timings={"analysis": analysed_at - started, "outputs": finished - analysed_at})
+
+
+def _in_background(function):
+    """Run ``function`` in a thread; return a callable that waits for it and raises its error."""
+    failure = []
+
+    def run():
+        try:
+            function()
+        except BaseException as exc:  # handed to whoever waits
+            failure.append(exc)
+
+    thread = threading.Thread(target=run, name="fanmap-background", daemon=True)
+    thread.start()
+
+    def wait():
+        thread.join()
+        if failure:
+            raise failure[0]
+    return wait
 
 
 def _run_distributed(client, todo, finish, max_in_flight):
@@ -792,7 +835,7 @@ def _run_distributed(client, todo, finish, max_in_flight):
     run = uuid.uuid4().hex[:8]
 
     pending = {}
-    running = as_completed()
+    running = as_completed(loop=client.loop)
 
     def submit_next():
         for index, job, settings in todo:
