@@ -8,7 +8,9 @@ V0), then analyses it
 2. with ``run_batch`` and a local dask cluster of 1 worker, then of 2 workers
    (records, table, summary figure and index included);
 3. with 2 workers again over the first half of the archive, to show that peak
-   memory does not grow with the number of maps.
+   memory does not grow with the number of maps;
+4. in two plain worker processes (no dask, no records, no table): the most that
+   two cores of this machine give, against which the 2-worker speed-up is judged.
 
 Each run is a separate process.  Its peak memory is the sum over its whole process
 tree (the batch with the dask scheduler, and every worker) of each process's own peak
@@ -35,6 +37,7 @@ Usage::
 
 import argparse
 import json
+import multiprocessing
 import os
 import resource
 import shutil
@@ -90,6 +93,11 @@ def _phase(kind, archive, out, count):
     outputs = 0.0
     if kind == "serial":
         rows = [batch.analyse_one(path, _settings()) for path in maps]
+    elif kind == "plain2":
+        # Two fresh processes and nothing else: what two cores of this machine give at best.
+        context = multiprocessing.get_context("spawn")
+        with ProcessPoolExecutor(2, mp_context=context) as pool:
+            rows = list(pool.map(batch.analyse_one, maps, [_settings()] * len(maps)))
     else:
         outcome = batch.run_batch(batch.jobs_for_paths(maps, root, _settings()), out, workers=int(kind),
                                   stream=None)
@@ -183,7 +191,8 @@ def main(argv=None):
               f"{os.getloadavg()[0]:.1f}")
         half = max(1, args.maps // 2)
         phases = {"serial, one process": ("serial", args.maps), "batch, 1 worker": ("1", args.maps),
-                  "batch, 2 workers": ("2", args.maps), f"batch, 2 workers, {half} maps": ("2", half)}
+                  "batch, 2 workers": ("2", args.maps), f"batch, 2 workers, {half} maps": ("2", half),
+                  "2 plain processes, no dask": ("plain2", args.maps)}
         # Rounds of every run in turn, so that a slow spell of the machine hits all of them
         # alike; each figure below is the run with the median wall time of its rounds.
         rounds = {name: [] for name in phases}
@@ -198,6 +207,20 @@ def main(argv=None):
         for name, r in runs.items():
             print(f"{name:30s} {r['maps']:5d} {r['failed']:6d} {r['seconds']:7.1f} {r['rate']:7.3f} "
                   f"{r['cpu_per_map']:9.3f} {r['median_map_s']:12.3f} {r['peak_mib']:9.0f}")
+        # Ratios within each round (the runs of a round ran minutes apart, not tens of minutes).
+        paired = {
+            "overhead": [(o["seconds"] - s["seconds"]) / s["seconds"]
+                         for s, o in zip(rounds["serial, one process"], rounds["batch, 1 worker"])],
+            "speed-up": [o["seconds"] / t["seconds"]
+                         for o, t in zip(rounds["batch, 1 worker"], rounds["batch, 2 workers"])],
+            "ceiling": [s["seconds"] / c["seconds"]
+                        for s, c in zip(rounds["serial, one process"], rounds["2 plain processes, no dask"])]}
+        print("\nper round: 1-worker overhead " + ", ".join(f"{v * 100:+.1f} %" for v in paired["overhead"])
+              + "; 2-over-1 speed-up " + ", ".join(f"{v:.2f}x" for v in paired["speed-up"])
+              + "; 2 plain processes over serial " + ", ".join(f"{v:.2f}x" for v in paired["ceiling"]))
+        print(f"medians of the per-round ratios: overhead {np.median(paired['overhead']) * 100:+.1f} % "
+              f"(target < 15 %), speed-up {np.median(paired['speed-up']):.2f}x (target >= 1.7x), "
+              f"machine ceiling {np.median(paired['ceiling']):.2f}x")
         serial, one, two = (runs["serial, one process"], runs["batch, 1 worker"], runs["batch, 2 workers"])
         half_run = runs[f"batch, 2 workers, {half} maps"]
         overhead = (one["seconds"] - serial["seconds"]) / serial["seconds"]
@@ -222,6 +245,10 @@ def main(argv=None):
         print(f"  maps analysed at once on average (2 workers): {parallel:.2f} "
               f"(sum of per-map times / wall time of the analysis phase)")
         print(f"speed-up, 2 workers over serial:          {two['rate'] / serial['rate']:.2f}x")
+        plain = runs["2 plain processes, no dask"]
+        print(f"2 plain processes over serial:            {plain['rate'] / serial['rate']:.2f}x "
+              f"(no dask, no records: the most two cores of this machine gave; median map "
+              f"{plain['median_map_s']:.3f} s)")
         print(f"peak memory, {two['maps']} vs {half_run['maps']} maps (2 workers): "
               f"{two['peak_mib']:.0f} vs {half_run['peak_mib']:.0f} MiB "
               f"(ratio {two['peak_mib'] / half_run['peak_mib']:.2f}; independent of size means ~1)")
