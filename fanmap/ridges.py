@@ -186,14 +186,14 @@ def _row_noise(rows):
 
 
 def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separation=3,
-                    valley=None):
+                    valley=None, crowded_separation=None):
     """Sub-pixel minima of every row of a log map.
 
     Each row's dips are found with :func:`scipy.signal.find_peaks` on the negated
     signal; only dips at least ``min_prominence`` times the row noise deep and
     ``min_separation`` points apart are kept (the resolvability cut: at low field
     the states crowd closer than the point spacing and minima there are aliases).
-    A row whose kept minima are, on median, closer than ``2 * min_separation``
+    A row whose kept minima are, on median, closer than ``crowded_separation``
     points is dropped as unresolved.  The position is refined to sub-pixel
     precision: by the vertex of the parabola through the lowest three points for
     dips narrower than two points, by the midpoint of the dip a quarter of its
@@ -215,6 +215,11 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
         Smallest distance between minima, in points.
     valley : ndarray, optional
         Valley strength (:func:`valley_strength`) sampled at each minimum.
+    crowded_separation : float, optional
+        Median spacing (points) below which a row counts as unresolved; default
+        ``2 * min_separation``, which keeps the aliases of crowded low-field levels out of
+        the fan's origin vote.  A search that only follows single lines through
+        rows of deep, evenly crowded minima (moire satellites) can pass ``min_separation``.
 
     Returns
     -------
@@ -235,6 +240,8 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
                                  "gate_alternative")}
     noises = _row_noise(logr)
     medians = np.median(logr, axis=1)
+    if crowded_separation is None:
+        crowded_separation = 2 * min_separation
     for i, row in enumerate(logr):
         if valid[i].sum() < max(10, 2 * min_separation) or not np.isfinite(field[i]) or field[i] == 0:
             continue
@@ -243,7 +250,7 @@ def find_row_minima(logr, valid, gate, field, *, min_prominence=4.0, min_separat
                                           distance=min_separation)
         if peaks.size == 0:
             continue
-        if peaks.size > 2 and np.median(np.diff(peaks)) < 2 * min_separation:
+        if peaks.size > 2 and np.median(np.diff(peaks)) < crowded_separation:
             continue
         # Dips separated by less than the detection threshold (noise on one flat floor, a
         # clipped plateau) are one dip; a dip's width is measured between the highest

@@ -37,12 +37,20 @@ from .physics import (FLUX_QUANTUM_SINGLE_ELECTRON, GRAPHENE_LATTICE_CONSTANT,
                       twist_angle_from_wavelength)
 from .results import State
 
-__all__ = ["SuperlatticeFinding", "analyse_superlattice", "superlattice_geometry"]
+__all__ = ["SuperlatticeFinding", "analyse_superlattice", "resolvable_slope",
+           "superlattice_geometry"]
 
 _PHI0 = FLUX_QUANTUM_SINGLE_ELECTRON
 #: Presets for which a superlattice is expected; "auto" searches and says what it saw.
 _MOIRE_MATERIALS = ("moire-graphene",)
 _MAIN_KINDS = ("integer", "broken-symmetry")
+#: A satellite line must hold this fraction of the field span of the map ...
+_MIN_SPAN_FRACTION = 0.12
+#: ... and at least this many points (and this fraction of the rows).
+_MIN_POINTS, _MIN_POINTS_FRACTION = 8, 0.06
+#: Neighbouring minima closer than this many gate points are not told apart (the ridge
+#: finder's smallest separation, :func:`fanmap.ridges.find_row_minima`).
+_MIN_SEPARATION_POINTS = 3
 
 
 @dataclass
@@ -161,10 +169,55 @@ def superlattice_geometry(cell_density, cell_density_stderr=0.0, *, flavours=4,
     return {k: (float(v) if isinstance(v, (float, np.floating)) else v) for k, v in out.items()}
 
 
+def resolvable_slope(gate, field, density_per_volt, flavours=4):
+    """Steepest Landau slope |t| of a satellite line that a fan map can resolve.
+
+    A line n = s n0 + t eB/h runs across the gate window (width W) within a field
+    range of at most W / (|t| dV/dB), dV/dB = 1 / (alpha h/e) per unit t.  Its minima
+    are told apart from the next level of the same family -- at most ``flavours``
+    flux quanta away -- only where that level is at least three gate steps away, i.e.
+    above B_res = 3 dV (alpha h/e) / flavours.  The search needs a line over a field
+    range L (12 % of the map's field span and at least 8 rows, as
+    :func:`analyse_superlattice` requires), so |t| <= W / (dV/dB (B_res + L)).
+
+    Parameters
+    ----------
+    gate : ndarray
+        Gate voltages (V).
+    field : ndarray
+        Field of every row (T).
+    density_per_volt : float
+        Lever arm alpha (m^-2 V^-1).
+    flavours : int
+        Largest level degeneracy of a satellite family (4 in graphene moires).
+
+    Returns
+    -------
+    int
+
+    Examples
+    --------
+    >>> gate, field = np.linspace(-6, 6, 500), np.linspace(0.03, 8, 250)
+    >>> resolvable_slope(gate, field, 6.3e15)
+    219
+    """
+    gate = np.sort(np.unique(np.asarray(gate, dtype=float)))
+    b = np.unique(np.abs(np.asarray(field, dtype=float)))
+    b = b[b > 0]
+    if gate.size < 2 or b.size < 2:
+        return 1
+    step = float(np.median(np.diff(gate)))
+    per_tesla = 1.0 / (abs(float(density_per_volt)) * _PHI0)   # gate slope of t = 1 (V/T)
+    b_res = _MIN_SEPARATION_POINTS * step / (max(int(flavours), 1) * per_tesla)
+    rows = max(_MIN_POINTS, int(_MIN_POINTS_FRACTION * b.size))
+    needed = max(_MIN_SPAN_FRACTION * np.ptp(np.abs(field)), rows * float(np.median(np.diff(b))))
+    return max(1, int(np.ptp(gate) / (per_tesla * (b_res + needed))))
+
+
 # --- the analysis --------------------------------------------------------------
 
 def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
-                         lattice_constant=GRAPHENE_LATTICE_CONSTANT, max_slope=24,
+                         lattice_constant=GRAPHENE_LATTICE_CONSTANT, max_slope=None,
                          max_band_filling=None, bootstrap=300, seed=0):
     """Find satellite fans, fit the moire cell density and derive the twist angle.
 
@@ -185,8 +238,9 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
         other preset (searched, but no twist angle is derived).
     lattice_constant : float or None
         Lattice constant for the twist angle (m); None gives no twist angle.
-    max_slope : int
-        Largest |t| searched for satellite lines.
+    max_slope : int, optional
+        Largest |t| searched for satellite lines (default: the steepest slope the map
+        can resolve, see :func:`resolvable_slope`).
     max_band_filling : int, optional
         Largest |s| accepted (default ``flavours``: satellites beyond full filling
         of the first band are rare and too easily explained by chance).
@@ -215,11 +269,19 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
                      "no twist angle derived")
         lattice_constant = None
 
+    settings = fan_result.extras.get("settings") or {}
     points = _ridge_points(fan_result)
-    if not (fan_result.extras.get("settings") or {}).get("use_conductivity"):
+    if not settings.get("use_conductivity"):
         points["gate"] = _reread_clipped_minima(points, gate, rxx)
+        # (only fanmap.fanfit.fit_fan's ridge finder drops crowded rows; its ridge points
+        # carry their map rows and its settings the detection threshold)
+        if "min_prominence" in settings and "row" in fan_result.ridge_points:
+            points = _add_crowded_rows(points, gate, fields, rxx,
+                                       float(settings["min_prominence"]))
     gate_step = float(np.median(np.abs(np.diff(np.sort(np.unique(gate))))))
     scale = _Scale(alpha=alpha, v0=v0, gate_step=gate_step)
+    if max_slope is None:
+        max_slope = resolvable_slope(gate, fields, alpha, flavours)
     main_states = [(i, st) for i, st in enumerate(fan_result.states)
                    if st.kind != "satellite"]
 
@@ -240,7 +302,8 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
         # Slopes are read as integers t in units of the main fit's lever arm: when the joint
         # fit moves it enough to misread the steepest lines, search again on the joint scale.
         change = joint["density_per_volt"] / scale.alpha - 1
-        if lattice["main_band_filling"] or not joint["joint"] or abs(change) * max_slope < 0.25:
+        steepest = max(abs(line["t"]) for line in lines)
+        if lattice["main_band_filling"] or not joint["joint"] or abs(change) * steepest < 0.25:
             break
         scale = _Scale(alpha=joint["density_per_volt"], v0=joint["zero_density_voltage"],
                        gate_step=gate_step)
@@ -379,9 +442,38 @@ def _ridge_points(fan_result):
         raise InputError("ridge points of the fan result have arrays of different lengths")
     ok = np.isfinite(b) & np.isfinite(v) & np.isfinite(weight) & (weight > 0) & (b != 0)
     b, v, state, weight, row = b[ok], v[ok], state[ok], weight[ok], row[ok]
-    if weight.size:
-        weight = weight / np.median(weight)
-    return {"field": b, "gate": v, "state": state, "weight": weight, "row": row}
+    median = float(np.median(weight)) if weight.size else 1.0
+    return {"field": b, "gate": v, "state": state, "weight": weight / median, "row": row,
+            "raw_weight_median": median}
+
+
+def _add_crowded_rows(points, gate, fields, rxx, min_prominence):
+    """Ridge points of the rows the fan fit dropped as crowded, added as free points.
+
+    The fan fit drops a row whose minima sit, on median, closer than twice the smallest
+    separation (aliases of unresolved levels would spoil its origin vote).  At low field a
+    moire map crowds the remote-band and flat-band levels that closely while each dip is
+    still several points from the next and deep: steep satellite lines live only there.
+    Those rows are read again with only the smallest separation (three points) enforced;
+    their minima vote for satellite lines only, never for the main fan.
+    """
+    from .ridges import find_row_minima, log_signal, valley_strength
+
+    order = np.argsort(gate)
+    logr, valid = log_signal(rxx[:, order])
+    valley = valley_strength(logr)
+    kept = set(np.unique(points["row"]).tolist())
+    relaxed = find_row_minima(logr, valid, gate[order], fields, min_prominence=min_prominence,
+                              valley=valley, crowded_separation=0)
+    new = ~np.isin(relaxed.row, list(kept)) & np.isfinite(relaxed.weight) & (relaxed.weight > 0)
+    if not new.any():
+        return points
+    scale = points["raw_weight_median"]
+    return {"field": np.r_[points["field"], relaxed.field[new]],
+            "gate": np.r_[points["gate"], relaxed.gate[new]],
+            "state": np.r_[points["state"], np.full(int(new.sum()), -1)],
+            "weight": np.r_[points["weight"], relaxed.weight[new] / scale],
+            "row": np.r_[points["row"], relaxed.row[new]], "raw_weight_median": scale}
 
 
 def _reread_clipped_minima(points, gate, rxx):
@@ -486,8 +578,8 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
     row_fields = np.unique(np.abs(fields[fields != 0]))
     n_rows = row_fields.size
     span = np.ptp(np.abs(fields))
-    min_points = max(8, int(0.06 * n_rows))
-    min_span = 0.12 * span
+    min_points = max(_MIN_POINTS, int(_MIN_POINTS_FRACTION * n_rows))
+    min_span = _MIN_SPAN_FRACTION * span
     origin_tol = 4.0 * step
 
     gate_lo, gate_hi = np.min(gate), np.max(gate)
@@ -537,9 +629,10 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
                                             0.4 * line["field_max"]):
             continue
         # a real line is resolved on most rows it crosses; crossings of other lines that
-        # happen to align are sparse
+        # happen to align are sparse (and, among the many steep trial slopes, often just
+        # above the smallest point count)
         rows_spanned = np.sum((row_fields >= line["field_min"]) & (row_fields <= line["field_max"]))
-        if line["points"] < 0.35 * rows_spanned:
+        if line["points"] <= 0.5 * rows_spanned:
             continue
         # quantised slopes: a background valley drifts with a slope some 10 % off an integer
         slope_tol = max(0.05 + 0.03 * abs(t), 3 * line["slope_filling_stderr"])
@@ -688,8 +781,13 @@ def _fit_lattice(lines, scale, flavours, max_band_filling, notes, main_origin_hi
     families = _families(lines, scale)
     floor = 1.5 * abs(scale.alpha) * scale.gate_step
     densities = [fam["density"] for fam in families] + [0.0]
-    outer = max(abs(d) for d in densities)
-    hypotheses = [(0.0, outer / k, k) for k in range(1, max_band_filling + 1)]
+    # every family in turn, outermost first, may be the one at full filling: a stray short
+    # line beyond the true outermost family then costs only the points it fails to explain
+    outward = sorted({abs(fam["density"]) for fam in families if abs(fam["density"]) > floor},
+                     reverse=True)
+    hypotheses = [(0.0, outer / k, k) for outer in outward for k in range(1, max_band_filling + 1)]
+    if not hypotheses:
+        return None
     low, high = min(densities), max(densities)
     if abs(0.5 * (low + high)) > floor:
         for edge in sorted({flavours, max(flavours // 2, 1)}, reverse=True):

@@ -112,3 +112,16 @@ def test_filling_profile_sees_a_state_too_faint_for_rows():
     prof, count = filling_profile(img, gate, field, 2.0, slopes)
     assert abs(slopes[np.argmin(prof)] * k - 3.0) < 0.1
     assert count.min() > 50
+
+
+def test_crowded_rows_are_dropped_unless_asked_for():
+    # Deep dips five points apart (below twice the smallest separation of three points):
+    # the default drops the row as unresolved; crowded_separation=0 keeps every dip.
+    gate = np.linspace(0, 1, 201)
+    centres = gate[10:191:5] + 0.001
+    _, r = _row(centres, width=0.006, gate=gate)
+    logr, valid = log_signal(r[None, :], despike=False)
+    assert find_row_minima(logr, valid, gate, np.array([1.0])).gate.size == 0
+    m = find_row_minima(logr, valid, gate, np.array([1.0]), crowded_separation=0)
+    assert m.gate.size == centres.size
+    np.testing.assert_allclose(np.sort(m.gate), centres, atol=0.25 * (gate[1] - gate[0]))
