@@ -614,7 +614,7 @@ def _find_offset_lines(points, free, scale, gate, fields, max_slope, main_onset=
     claimed = ~free
     lines = []
     for _, t, u0 in candidates:
-        line = _grow_line(b, v, row, points["weight"], claimed, t, u0, k, tol)
+        line = _grow_line(b, v, row, points["weight"], claimed, t, u0, k, tol, min_points)
         if line is None or line["points"] < min_points:
             continue
         # the vote only seeds the line: among neighbouring integers (steep lines pile up
@@ -666,13 +666,15 @@ def _held_slope_rms(b, v, line, slope):
     return float(np.sqrt(np.mean((resid - np.mean(resid)) ** 2)))
 
 
-def _grow_line(b, v, row, weight, claimed, t, u0, k, tol):
+def _grow_line(b, v, row, weight, claimed, t, u0, k, tol, min_points=3):
     """Collect the points of one line (one per field row) and fit it freely.
 
     The vote fixes the slope t; the intercept is first refined with that slope
     held, so that a neighbouring line merging with this one at low field cannot
     drag the start of the fit away.  Then slope and intercept are fitted with
-    outliers clipped, and the window shrinks to the line's own scatter.
+    outliers clipped, and the window shrinks to the line's own scatter.  A seed
+    with fewer than ``min_points`` free points near it is given up at once: the
+    fit only ever keeps a subset of them.
     """
 
     def members_near(intercept, slope, window):
@@ -690,6 +692,8 @@ def _grow_line(b, v, row, weight, claimed, t, u0, k, tol):
         return None
     intercept += np.median(resid[members])
     members, resid = members_near(intercept, slope, tol)
+    if members.size < max(min_points, 3):
+        return None
     # Tukey-biweight reweighting: points of a merging neighbour get zero weight
     robust = np.ones(members.size)
     for _ in range(6):
@@ -721,18 +725,27 @@ def _grow_line(b, v, row, weight, claimed, t, u0, k, tol):
 
 
 def _line_fit(x, y, w):
-    """Weighted straight-line fit y = a + s x with covariance (scaled by the residuals)."""
-    X = np.column_stack([np.ones_like(x), x])
-    sw = np.sqrt(w)
-    try:
-        coef, *_ = np.linalg.lstsq(X * sw[:, None], y * sw, rcond=None)
-        resid = y - X @ coef
-        dof = max(x.size - 2, 1)
-        s2 = np.sum(w * resid**2) / dof
-        cov = np.linalg.inv((X * w[:, None]).T @ X) * s2
-    except np.linalg.LinAlgError:
+    """Weighted straight-line fit y = a + s x with covariance (scaled by the residuals).
+
+    Closed form about the weighted mean of x (called tens of thousands of times
+    per moire map; a general least-squares solver took most of the search).
+    """
+    total = np.sum(w)
+    if not total > 0:
         return None
-    return coef[0], coef[1], cov, float(np.sqrt(np.mean(resid**2)))
+    x_mean, y_mean = np.sum(w * x) / total, np.sum(w * y) / total
+    dx = x - x_mean
+    sxx = np.sum(w * dx * dx)
+    if not sxx > 1e-12 * total * max(np.max(np.abs(x)), 1e-300) ** 2:
+        return None     # all points at one x: no slope
+    slope = np.sum(w * dx * (y - y_mean)) / sxx
+    intercept = y_mean - slope * x_mean
+    resid = y - (intercept + slope * x)
+    s2 = np.sum(w * resid**2) / max(x.size - 2, 1)
+    var_slope = s2 / sxx
+    cov = np.array([[s2 / total + x_mean**2 * var_slope, -x_mean * var_slope],
+                    [-x_mean * var_slope, var_slope]])
+    return intercept, slope, cov, float(np.sqrt(np.mean(resid**2)))
 
 
 # --- the lattice: one n0 for every intercept --------------------------------------------
