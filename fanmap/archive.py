@@ -634,10 +634,17 @@ def _dask_client(workers, scheduler):
     # 500 x 250 fan fits took 4.0 s with it and 2.0 s without (one process, measured).
     # Each worker holds one map at a time, so memory stays bounded without it.
     # The worker's statistical profiler samples the running task's stack every 10 ms,
-    # holding the interpreter lock; it made each fan fit 15-40 % slower (measured).
+    # holding the interpreter lock; it made each fan fit 15-40 % slower (measured).  The
+    # event-loop watchdog (20 ms) and the load and memory monitors (0.5 s, 0.1 s) woke a
+    # worker's event loop ~1800 times a second, each time taking the interpreter lock from
+    # the fit; at 1-2 s they wake it ~40 times (measured), and a worker still holds only
+    # one map at a time.
     with warnings.catch_warnings(), dask.config.set(
             {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
-             "distributed.worker.profile.enabled": False}):
+             "distributed.worker.profile.enabled": False,
+             "distributed.admin.tick.interval": "1s",
+             "distributed.admin.system-monitor.interval": "2s",
+             "distributed.worker.memory.monitor-interval": "2s"}):
         # "port 8787 is in use, using another": the address actually used is printed anyway.
         warnings.filterwarnings("ignore", message="Port .* is already in use")
         cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
