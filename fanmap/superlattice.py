@@ -272,11 +272,17 @@ def analyse_superlattice(fan_map, fan_result, *, flavours=4, material="auto",
     settings = fan_result.extras.get("settings") or {}
     points = _ridge_points(fan_result)
     if not settings.get("use_conductivity"):
-        points["gate"] = _reread_clipped_minima(points, gate, rxx)
+        from .ridges import log_signal
+
+        # the fit's clipped log signal, on the gate axis in increasing order
+        order = np.argsort(gate)
+        sorted_gate, sorted_rxx = gate[order], rxx[:, order]
+        clipped_log, valid = log_signal(sorted_rxx)
+        points["gate"] = _reread_clipped_minima(points, sorted_gate, sorted_rxx, clipped_log)
         # (only fanmap.fanfit.fit_fan's ridge finder drops crowded rows; its ridge points
         # carry their map rows and its settings the detection threshold)
         if "min_prominence" in settings and "row" in fan_result.ridge_points:
-            points = _add_crowded_rows(points, gate, fields, rxx,
+            points = _add_crowded_rows(points, sorted_gate, fields, clipped_log, valid,
                                        float(settings["min_prominence"]))
     gate_step = float(np.median(np.abs(np.diff(np.sort(np.unique(gate))))))
     scale = _Scale(alpha=alpha, v0=v0, gate_step=gate_step)
@@ -447,7 +453,7 @@ def _ridge_points(fan_result):
             "raw_weight_median": median}
 
 
-def _add_crowded_rows(points, gate, fields, rxx, min_prominence):
+def _add_crowded_rows(points, gate, fields, logr, valid, min_prominence):
     """Ridge points of the rows the fan fit dropped as crowded, added as free points.
 
     The fan fit drops a row whose minima sit, on median, closer than twice the smallest
@@ -455,15 +461,14 @@ def _add_crowded_rows(points, gate, fields, rxx, min_prominence):
     moire map crowds the remote-band and flat-band levels that closely while each dip is
     still several points from the next and deep: steep satellite lines live only there.
     Those rows are read again with only the smallest separation (three points) enforced;
-    their minima vote for satellite lines only, never for the main fan.
+    their minima vote for satellite lines only, never for the main fan.  ``gate`` is
+    increasing and ``logr``, ``valid`` are the fit's log signal on it.
     """
-    from .ridges import find_row_minima, log_signal, valley_strength
+    from .ridges import find_row_minima, valley_strength
 
-    order = np.argsort(gate)
-    logr, valid = log_signal(rxx[:, order])
     valley = valley_strength(logr)
     kept = set(np.unique(points["row"]).tolist())
-    relaxed = find_row_minima(logr, valid, gate[order], fields, min_prominence=min_prominence,
+    relaxed = find_row_minima(logr, valid, gate, fields, min_prominence=min_prominence,
                               valley=valley, crowded_separation=0)
     new = ~np.isin(relaxed.row, list(kept)) & np.isfinite(relaxed.weight) & (relaxed.weight > 0)
     if not new.any():
@@ -476,7 +481,7 @@ def _add_crowded_rows(points, gate, fields, rxx, min_prominence):
             "row": np.r_[points["row"], relaxed.row[new]], "raw_weight_median": scale}
 
 
-def _reread_clipped_minima(points, gate, rxx):
+def _reread_clipped_minima(points, gate, rxx, clipped_log):
     """Ridge positions re-read on the raw R_xx where the fit's log signal clipped the dip.
 
     The fan fit clips log R_xx at a floor of a few times the noise and places a
@@ -485,34 +490,31 @@ def _reread_clipped_minima(points, gate, rxx):
     several gate steps.  Where the raw dip under the clipped run has one clear bottom
     (values falling towards it from both ends), the vertex of the parabola through its
     lowest three raw points replaces the midpoint; noise on a true zero plateau has no
-    such shape and keeps the fit's position.
+    such shape and keeps the fit's position.  ``gate`` is increasing, ``rxx`` and
+    ``clipped_log`` (the fit's log signal) are on it.
     """
-    from .ridges import log_signal
-
-    order = np.argsort(gate)
-    g, r = gate[order], rxx[:, order]
-    clipped_log, _ = log_signal(r)
-    raw = _log_resistance(r)
+    raw = _log_resistance(rxx)
     clipped = np.isfinite(raw) & (clipped_log > raw + 1e-9)
     out = points["gate"].copy()
     rows = points["row"]
-    ok = (rows >= 0) & (rows < r.shape[0])
-    col = np.clip(np.rint(np.interp(out, g, np.arange(g.size))).astype(int), 0, g.size - 1)
+    ok = (rows >= 0) & (rows < rxx.shape[0])
+    col = np.clip(np.rint(np.interp(out, gate, np.arange(gate.size))).astype(int), 0, gate.size - 1)
     for k in np.flatnonzero(ok):
         i, c = rows[k], col[k]
-        lo, hi = c, c
+        # the clipped run at the point, or at a neighbour of it
+        if clipped[i, c]:
+            lo = c
+        elif c > 0 and clipped[i, c - 1]:
+            lo = c - 1
+        elif c < gate.size - 1 and clipped[i, c + 1]:
+            lo = c + 1
+        else:
+            continue
+        hi = lo
         while lo > 0 and clipped[i, lo - 1]:
             lo -= 1
-        while hi < g.size - 1 and clipped[i, hi + 1]:
+        while hi < gate.size - 1 and clipped[i, hi + 1]:
             hi += 1
-        if not clipped[i, c] and not (clipped[i, max(c - 1, 0)] or clipped[i, min(c + 1, g.size - 1)]):
-            continue
-        if not clipped[i, c]:
-            lo, hi = (c - 1, c - 1) if c > 0 and clipped[i, c - 1] else (c + 1, c + 1)
-            while lo > 0 and clipped[i, lo - 1]:
-                lo -= 1
-            while hi < g.size - 1 and clipped[i, hi + 1]:
-                hi += 1
         seg = raw[i, lo:hi + 1]
         if not np.isfinite(seg).all():
             continue
@@ -521,10 +523,10 @@ def _reread_clipped_minima(points, gate, rxx):
         if np.any(np.diff(seg[:j + 1]) > 0) or np.any(np.diff(seg[j:]) < 0):
             continue
         j += lo
-        if j <= 0 or j >= g.size - 1 or not np.isfinite(raw[i, j - 1:j + 2]).all():
+        if j <= 0 or j >= gate.size - 1 or not np.isfinite(raw[i, j - 1:j + 2]).all():
             continue
         offset = np.clip(_parabolic_offset(raw[i], j), -0.5, 0.5)
-        out[k] = float(np.interp(j + offset, np.arange(g.size), g))
+        out[k] = float(np.interp(j + offset, np.arange(gate.size), gate))
     return out
 
 
